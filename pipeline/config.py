@@ -1,0 +1,263 @@
+"""Configuration schema: one validated table per stage, TOML load/dump, clear errors.
+
+Every key carries its unit in its name. ``configs/default.toml`` is generated from these models
+(``isogap config show --defaults``) so the documented defaults can never drift from the code;
+a test checks that the shipped file equals the generated one.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import math
+import os
+import tomllib
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
+
+from pipeline.errors import ConfigError
+
+__all__ = [
+    "BarrierConfig",
+    "CalibrateConfig",
+    "Config",
+    "DriftConfig",
+    "HeightConfig",
+    "InputConfig",
+    "LevelConfig",
+    "QualityConfig",
+    "RunConfig",
+    "config_sha256",
+    "dump_toml",
+    "load_config",
+    "parse_config",
+]
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, validate_default=True)
+
+
+class RunConfig(_Section):
+    """How the batch runs."""
+
+    executor: Literal["serial", "processes", "dask"] = Field(
+        "processes", description="serial (one core), processes (local cores) or dask (cluster)")
+    workers: int = Field(0, ge=0, le=1024, description="worker processes; 0 = all local cores")
+    scheduler_address: str = Field(
+        "", description="Dask scheduler address (tcp://HOST:PORT) when executor = \"dask\"")
+    title: str = Field("isogap run", description="title attribute of the store")
+
+
+class InputConfig(_Section):
+    """Which files of the run folder are read."""
+
+    recursive: bool = Field(False, description="also read files in sub-folders")
+    piezo_z_m_per_V: float | None = Field(
+        None, gt=0, le=1e-6,
+        description="z piezo sensitivity in m/V, overriding the files' own attribute "
+        "(unset = use the file's)")
+
+
+class BarrierConfig(_Section):
+    """Work function / decay constant from the run's approach curves."""
+
+    source: Literal["curves", "fixed", "two-setpoint"] = Field(
+        "curves", description="curves: fit the run's approach curves (fixed value if none); "
+        "fixed: use work_function_eV; two-setpoint: from two frames of one area")
+    work_function_eV: float = Field(
+        4.5, gt=0.5, le=12.0, description="barrier height used when source = \"fixed\" or a "
+        "run has no usable curves, eV")
+    work_function_uncertainty_eV: float = Field(
+        0.5, ge=0, le=5.0, description="standard uncertainty of work_function_eV, eV")
+    min_points: int = Field(8, ge=4, le=100000, description="fewest samples in a usable fit range")
+    outlier_threshold_sigma: float = Field(
+        3.0, gt=0, le=100, description="curves further than this many standard deviations from "
+        "the run's weighted mean are rejected")
+    bias_correction: bool = Field(
+        False, description="also fit the numerical WKB model to report a bias-corrected barrier")
+
+
+class HeightConfig(_Section):
+    """Current or feedback signal → height."""
+
+    combine_traces: bool = Field(
+        True, description="average forward and backward traces where they agree")
+    trace_mismatch_sigma: float = Field(
+        5.0, gt=0, le=1000, description="flag pixels whose traces differ by more than this many "
+        "noise standard deviations")
+    noise_floor_A: float | None = Field(
+        None, ge=0, le=1e-6, description="currents below this magnitude are flagged "
+        "(unset = estimated from the frame)")
+    current_noise_A: float | None = Field(
+        None, ge=0, le=1e-6, description="standard deviation of the current noise "
+        "(unset = estimated from the frame)")
+
+
+class LevelConfig(_Section):
+    """Background removal that keeps step heights true."""
+
+    method: Literal["none", "plane", "polynomial"] = Field(
+        "plane", description="background model: none, plane or polynomial")
+    polynomial_order: int = Field(2, ge=1, le=8, description="order when method = \"polynomial\"")
+    robust: bool = Field(True, description="iteratively reweighted fit (adsorbates, steps)")
+    line_offsets: bool = Field(True, description="remove per-line offsets by robust matching")
+    line_slopes: bool = Field(False, description="also remove per-line slopes")
+    terraces: bool = Field(True, description="segment terraces; one common plane plus one "
+                           "offset per terrace; report step heights")
+    scars: bool = Field(True, description="detect, flag and repair short streaks in one line")
+
+
+class DriftConfig(_Section):
+    """Thermal drift between and within frames."""
+
+    enabled: bool = Field(True, description="measure and correct drift over the run")
+    upsample_factor: int = Field(
+        20, ge=1, le=1000, description="registration precision is 1/upsample_factor pixel")
+    min_confidence: float = Field(
+        0.3, ge=0, le=1, description="frame pairs whose registration confidence is below this "
+        "are excluded from the drift model")
+    model: Literal["constant", "smooth"] = Field(
+        "constant", description="drift velocity model over the run: constant or smooth")
+    correct_within_frames: bool = Field(
+        True, description="move each pixel back by the drift during its own acquisition")
+
+
+class CalibrateConfig(_Section):
+    """z and lateral scale calibration."""
+
+    known_step_height_m: float | None = Field(
+        None, gt=0, le=1e-8, description="true monatomic step height (e.g. a/sqrt(3) for "
+        "fcc(111)); when set, z is rescaled so measured steps match it")
+    lattice_constant_m: float | None = Field(
+        None, gt=0, le=1e-8, description="surface lattice period for the lateral calibration")
+
+
+class QualityConfig(_Section):
+    """Flags, roughness and tip-change detection."""
+
+    tip_change_threshold_sigma: float = Field(
+        8.0, gt=0, le=1000, description="line-to-line jumps larger than this many robust "
+        "standard deviations that persist count as tip changes")
+
+
+class Config(_Section):
+    """The whole effective configuration of a run."""
+
+    run: RunConfig = RunConfig()
+    input: InputConfig = InputConfig()
+    barrier: BarrierConfig = BarrierConfig()
+    height: HeightConfig = HeightConfig()
+    level: LevelConfig = LevelConfig()
+    drift: DriftConfig = DriftConfig()
+    calibrate: CalibrateConfig = CalibrateConfig()
+    quality: QualityConfig = QualityConfig()
+
+
+# --------------------------------------------------------------------------------------------
+# loading and errors
+# --------------------------------------------------------------------------------------------
+
+
+def _valid_keys(model: type[BaseModel], path: tuple[str | int, ...]) -> list[str]:
+    cls: Any = model
+    for part in path:
+        field = cls.model_fields.get(part) if isinstance(part, str) else None
+        if field is None or not isinstance(field.annotation, type) or not issubclass(
+                field.annotation, BaseModel):
+            break
+        cls = field.annotation
+    return list(cls.model_fields)
+
+
+def _format_error(err: dict[str, Any], source: str) -> str:
+    loc = tuple(err["loc"])
+    where = ".".join(map(str, loc))
+    table = ".".join(map(str, loc[:-1]))
+    key = str(loc[-1]) if loc else ""
+    if err["type"] == "extra_forbidden":
+        valid = _valid_keys(Config, loc[:-1])
+        close = difflib.get_close_matches(key, valid, n=1, cutoff=0.5)
+        hint = f" (did you mean '{close[0]}'?)" if close else f" (valid: {', '.join(valid)})"
+        place = f" in [{table}]" if table else ""
+        return f"config {source}: unknown key '{key}'{place}{hint}"
+    value = err.get("input")
+    return f"config {source}: key '{where}' = {value!r}: {err['msg']}"
+
+
+def parse_config(data: dict[str, Any], *, source: str = "<config>") -> Config:
+    """Validate a config mapping (as read from TOML) and return the effective :class:`Config`."""
+    try:
+        return Config.model_validate(data)
+    except ValidationError as exc:
+        lines = [_format_error(e, source) for e in exc.errors()]
+        raise ConfigError("\n".join(lines)) from None
+
+
+def load_config(path: str | os.PathLike[str] | None = None) -> Config:
+    """Load and validate a TOML config file; ``None`` gives the defaults."""
+    if path is None:
+        return Config()
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"config {p}: file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"config {p}: cannot read ({exc})") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"config {p}: not valid TOML ({exc})") from None
+    return parse_config(data, source=str(p))
+
+
+# --------------------------------------------------------------------------------------------
+# dumping
+# --------------------------------------------------------------------------------------------
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if not math.isfinite(v):
+            raise ValueError(f"cannot write {v} to TOML")
+        return repr(v)
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, list | tuple):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    raise TypeError(f"cannot write {type(v).__name__} to TOML")
+
+
+def dump_toml(config: Config, *, comments: bool = True) -> str:
+    """Write a config as TOML, every key (unset optional keys as comments) with its description."""
+    out: list[str] = []
+    if comments:
+        out += ["# isogap configuration: every key, with its default.",
+                "# Units are in the key names (m, V, A, s, eV). Unknown keys are errors.", ""]
+    for name in Config.model_fields:
+        section: BaseModel = getattr(config, name)
+        if comments and section.__doc__:
+            out.append(f"# {section.__doc__.strip().splitlines()[0]}")
+        out.append(f"[{name}]")
+        for key, field in type(section).model_fields.items():
+            value = getattr(section, key)
+            if comments and field.description:
+                out.append(f"# {field.description}")
+            if value is None:
+                out.append(f"# {key} =")
+            else:
+                out.append(f"{key} = {_toml_value(value)}")
+        out.append("")
+    return "\n".join(out)
+
+
+def config_sha256(config: Config) -> str:
+    """SHA-256 of the canonical (comment-free) TOML of a config."""
+    return hashlib.sha256(dump_toml(config, comments=False).encode()).hexdigest()
