@@ -31,6 +31,7 @@ __all__ = [
     "RunConfig",
     "config_sha256",
     "dump_toml",
+    "toml_value",
     "load_config",
     "parse_config",
 ]
@@ -219,7 +220,7 @@ def load_config(path: str | os.PathLike[str] | None = None) -> Config:
 # --------------------------------------------------------------------------------------------
 
 
-def _toml_value(v: Any) -> str:
+def toml_value(v: Any) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
     if isinstance(v, int):
@@ -231,7 +232,7 @@ def _toml_value(v: Any) -> str:
     if isinstance(v, str):
         return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
     if isinstance(v, list | tuple):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+        return "[" + ", ".join(toml_value(x) for x in v) + "]"
     raise TypeError(f"cannot write {type(v).__name__} to TOML")
 
 
@@ -253,7 +254,7 @@ def dump_toml(config: Config, *, comments: bool = True) -> str:
             if value is None:
                 out.append(f"# {key} =")
             else:
-                out.append(f"{key} = {_toml_value(value)}")
+                out.append(f"{key} = {toml_value(value)}")
         out.append("")
     return "\n".join(out)
 

@@ -1,0 +1,194 @@
+"""The per-file recipes a worker runs: read its own input, call the stages in order, stage the result.
+
+Each task takes file paths and plain parameters (never arrays), so it can run in this process,
+in a local worker process or on a Dask worker; it returns a small summary (never the maps) and
+turns every expected error into a :class:`~pipeline.io.store.Failure`, so one bad file never stops
+a run. The sequence of named stages of a frame is visible here, in :func:`process_frame`.
+Scheduling lives in :mod:`pipeline.batch`.
+"""
+
+from __future__ import annotations
+
+import traceback
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from pipeline.config import Config
+from pipeline.errors import IsogapError
+from pipeline.io.readers import file_sha256, read_file
+from pipeline.io.store import Failure, read_staged, write_staged
+from pipeline.model import BAD_PIXELS, get_warnings, parse_time
+from pipeline.stages.barrier import fit_curves
+from pipeline.stages.calibrate import scale_height
+from pipeline.stages.drift import DriftModel, correct_drift, measure_frame_shift
+from pipeline.stages.height import reconstruct_height
+from pipeline.stages.level import level_lines, level_terraces, repair_scars, subtract_background
+from pipeline.stages.quality import assess_quality
+
+__all__ = [
+    "FrameSummary",
+    "SurveyResult",
+    "finalize_frame",
+    "process_frame",
+    "register_pair",
+    "survey_file",
+]
+
+
+@dataclass
+class SurveyResult:
+    """What a first look at one input file found."""
+
+    path: str
+    kind: str = ""  # "frame" or "curve"
+    sha256: str = ""
+    attrs: dict[str, Any] = field(default_factory=dict)
+    curve_table: xr.Dataset | None = None
+    failure: Failure | None = None
+
+
+@dataclass
+class FrameSummary:
+    """The small result a frame task returns to the scheduler."""
+
+    path: str
+    frame_id: str = ""
+    staged: str = ""
+    status: str = ""
+    start_time: str = ""
+    mean_height_m: float = float("nan")
+    step_height_m: float | None = None
+    step_height_uncertainty_m: float | None = None
+    n_warnings: int = 0
+    failure: Failure | None = None
+
+
+def _failure(path: str, stage: str, exc: BaseException) -> Failure:
+    if isinstance(exc, IsogapError):
+        msg = str(exc)
+    else:  # a defect, not bad input: keep the traceback's last line so it can be reported
+        tb = traceback.format_exception_only(type(exc), exc)[-1].strip()
+        msg = f"internal error in stage {stage}: {tb}"
+    return Failure(file=path, stage=stage, message=msg)
+
+
+def survey_file(path: str, config: Config) -> SurveyResult:
+    """Read one input; fit its approach curves if it holds curves, else note the frame's attrs."""
+    res = SurveyResult(path=path)
+    try:
+        ds = read_file(path, piezo_z_m_per_V=config.input.piezo_z_m_per_V)
+    except Exception as exc:  # noqa: BLE001 - every failure is recorded, none stops the run
+        res.failure = _failure(path, "read", exc)
+        return res
+    res.kind = str(ds.attrs["kind"])
+    res.sha256 = str(ds.attrs.get("source_sha256", ""))
+    res.attrs = {k: v for k, v in ds.attrs.items() if isinstance(v, str | int | float)}
+    if res.kind == "curve":
+        try:
+            b = config.barrier
+            res.curve_table = fit_curves(ds, min_points=b.min_points)
+        except Exception as exc:  # noqa: BLE001
+            res.failure = _failure(path, "fit_curves", exc)
+    return res
+
+
+def process_frame(
+    path: str, store: str, config: Config, work_function_eV: float,
+    work_function_uncertainty_eV: float, run_key: str,
+) -> FrameSummary:
+    """Raw frame → height → levelling → quality; the result is staged under ``store``.
+
+    ``run_key`` identifies everything the result depends on besides the source file (config
+    sections, work function); it is stored so a resumed run can tell whether to recompute.
+    """
+    out = FrameSummary(path=path)
+    stage = "read"
+    try:
+        raw = read_file(path, piezo_z_m_per_V=config.input.piezo_z_m_per_V)
+        if raw.attrs.get("kind") != "frame":
+            raise IsogapError(f"{path}: expected a frame, found kind {raw.attrs.get('kind')!r}")
+        h, lv, q = config.height, config.level, config.quality
+        stage = "reconstruct_height"
+        ds = reconstruct_height(
+            raw, work_function_eV=work_function_eV,
+            work_function_uncertainty_eV=work_function_uncertainty_eV,
+            combine_traces=h.combine_traces, trace_mismatch_sigma=h.trace_mismatch_sigma,
+            noise_floor_A=h.noise_floor_A, current_noise_A=h.current_noise_A)
+        del raw
+        if lv.scars:
+            stage = "repair_scars"
+            ds = repair_scars(ds)
+        if lv.line_offsets:
+            stage = "level_lines"
+            ds = level_lines(ds, slopes=lv.line_slopes)
+        if lv.method != "none":
+            stage = "subtract_background"
+            ds = subtract_background(ds, method=lv.method, order=lv.polynomial_order,
+                                     robust=lv.robust)
+        if lv.terraces:
+            stage = "level_terraces"
+            ds = level_terraces(ds)
+        stage = "assess_quality"
+        ds = assess_quality(ds, tip_change_threshold_sigma=q.tip_change_threshold_sigma)
+        ds.attrs["run_key"] = run_key
+        stage = "stage-write"
+        out.staged = str(write_staged(store, "frames", ds.attrs["frame_id"], ds))
+        _summarise(ds, out)
+    except Exception as exc:  # noqa: BLE001
+        out.failure = _failure(path, stage, exc)
+    return out
+
+
+def _summarise(ds: xr.Dataset, out: FrameSummary) -> None:
+    out.frame_id = str(ds.attrs["frame_id"])
+    out.status = str(ds.attrs.get("status", "ok"))
+    out.start_time = str(ds.attrs["start_time"])
+    good = (ds["flags"].values & int(BAD_PIXELS)) == 0
+    hv = ds["height"].values
+    vals = hv[good & np.isfinite(hv)]
+    out.mean_height_m = float(vals.mean()) if vals.size else float("nan")
+    if "step_height_m" in ds.attrs:
+        out.step_height_m = float(ds.attrs["step_height_m"])
+        out.step_height_uncertainty_m = float(ds.attrs.get("step_height_uncertainty_m", np.nan))
+    out.n_warnings = len(get_warnings(ds))
+
+
+def register_pair(previous: str, current: str, config: Config) -> dict[str, Any]:
+    """Measure the drift shift between two staged, levelled frames."""
+    a, b = read_staged(previous), read_staged(current)
+    shift = measure_frame_shift(a, b, upsample_factor=config.drift.upsample_factor)
+    return dict(shift if isinstance(shift, dict) else shift.__dict__)
+
+
+def finalize_frame(
+    staged: str, store: str, *, drift_model: DriftModel | None, run_t0: str,
+    z_scale: float, z_scale_uncertainty: float, extra_attrs: dict[str, Any],
+) -> FrameSummary:
+    """Run-level corrections of one staged frame: drift inside the frame, then the z scale."""
+    ds = read_staged(staged)
+    out = FrameSummary(path=str(ds.attrs.get("source_file", staged)))
+    stage = "correct_drift"
+    try:
+        if drift_model is not None:
+            t0 = (parse_time(ds.attrs["start_time"]) - parse_time(run_t0)).total_seconds()
+            ds = correct_drift(ds, model=drift_model, frame_t0_s=t0)
+        if z_scale != 1.0:
+            stage = "scale_height"
+            ds = scale_height(ds, factor=z_scale, factor_uncertainty=z_scale_uncertainty)
+        ds.attrs.update(extra_attrs)
+        stage = "stage-write"
+        out.staged = str(write_staged(store, "final", ds.attrs["frame_id"], ds))
+        _summarise(ds, out)
+    except Exception as exc:  # noqa: BLE001
+        out.failure = _failure(out.path, stage, exc)
+    return out
+
+
+def source_unchanged(path: str | Path, sha256: str) -> bool:
+    """True if the file still exists with the recorded hash."""
+    p = Path(path)
+    return p.is_file() and file_sha256(p) == sha256
