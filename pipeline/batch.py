@@ -18,6 +18,7 @@ the same command resumes: only what is missing or changed is recomputed.
 from __future__ import annotations
 
 import hashlib
+import itertools
 import json
 import logging
 import os
@@ -437,7 +438,7 @@ def _drift(
     executor: Any, order: list[str], staged: dict[str, str], run_t0: str, config: Config,
     emit: Callable[[Event], None],
 ) -> tuple[Any, xr.Dataset | None]:
-    pairs = [(staged[a], staged[b], config) for a, b in zip(order[:-1], order[1:], strict=True)]
+    pairs = [(staged[a], staged[b], config) for a, b in itertools.pairwise(order)]
     emit(Event("pass", name="drift", total=len(pairs)))
     shifts: list[dict[str, Any]] = [{}] * len(pairs)
     for i, res in executor.map_unordered(tasks.register_pair, pairs):

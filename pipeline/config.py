@@ -31,9 +31,9 @@ __all__ = [
     "RunConfig",
     "config_sha256",
     "dump_toml",
-    "toml_value",
     "load_config",
     "parse_config",
+    "toml_value",
 ]
 
 

@@ -12,7 +12,6 @@ import os
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
 
 from pipeline.batch import Event, RunSummary, run_batch
 from pipeline.config import Config

@@ -41,8 +41,8 @@ __all__ = [
     "make_height_frame",
     "make_raw_frame",
     "parse_time",
-    "replace_maps",
     "pixel_time_s",
+    "replace_maps",
     "sanitize_id",
     "stage",
     "validate_curves",
@@ -106,11 +106,12 @@ def flag_attrs() -> dict[str, Any]:
 def sanitize_id(text: str) -> str:
     """Make a frame id safe as an HDF5 group name and a file name.
 
-    Keeps letters, digits, ``-``, ``_`` and ``.``; everything else becomes ``_``; a leading dot
-    is replaced so that the id can never name a hidden file or a parent folder.
+    Keeps letters, digits, ``-``, ``_`` and single dots; everything else (slashes, runs of dots,
+    a leading dot) becomes ``_``, so an id can never name a hidden file or a parent folder.
     """
     out = re.sub(r"[^A-Za-z0-9_.-]", "_", str(text)).strip()
-    out = re.sub(r"^\.+", "_", out)
+    out = re.sub(r"\.{2,}", "_", out)
+    out = re.sub(r"^\.", "_", out)
     return out or "_"
 
 

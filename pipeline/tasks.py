@@ -1,4 +1,4 @@
-"""The per-file recipes a worker runs: read its own input, call the stages in order, stage the result.
+"""Per-file recipes a worker runs: read its own input, call the stages in order, stage it.
 
 Each task takes file paths and plain parameters (never arrays), so it can run in this process,
 in a local worker process or on a Dask worker; it returns a small summary (never the maps) and
@@ -81,7 +81,7 @@ def survey_file(path: str, config: Config) -> SurveyResult:
     res = SurveyResult(path=path)
     try:
         ds = read_file(path, piezo_z_m_per_V=config.input.piezo_z_m_per_V)
-    except Exception as exc:  # noqa: BLE001 - every failure is recorded, none stops the run
+    except Exception as exc:  # every failure is recorded, none stops the run
         res.failure = _failure(path, "read", exc)
         return res
     res.kind = str(ds.attrs["kind"])
@@ -91,7 +91,7 @@ def survey_file(path: str, config: Config) -> SurveyResult:
         try:
             b = config.barrier
             res.curve_table = fit_curves(ds, min_points=b.min_points)
-        except Exception as exc:  # noqa: BLE001
+        except Exception as exc:
             res.failure = _failure(path, "fit_curves", exc)
     return res
 
@@ -138,7 +138,7 @@ def process_frame(
         stage = "stage-write"
         out.staged = str(write_staged(store, "frames", ds.attrs["frame_id"], ds))
         _summarise(ds, out)
-    except Exception as exc:  # noqa: BLE001
+    except Exception as exc:
         out.failure = _failure(path, stage, exc)
     return out
 
@@ -183,7 +183,7 @@ def finalize_frame(
         stage = "stage-write"
         out.staged = str(write_staged(store, "final", ds.attrs["frame_id"], ds))
         _summarise(ds, out)
-    except Exception as exc:  # noqa: BLE001
+    except Exception as exc:
         out.failure = _failure(out.path, stage, exc)
     return out
 

@@ -117,7 +117,8 @@ def read_sidecar(data_path: Path) -> tuple[dict[str, Any], dict[str, dict[str, A
     except UnicodeDecodeError:
         raise UnreadableFileError(f"{data_path}: sidecar {side} is not UTF-8 text") from None
     except tomllib.TOMLDecodeError as exc:
-        raise UnreadableFileError(f"{data_path}: sidecar {side} is not valid TOML ({exc})") from None
+        raise UnreadableFileError(
+            f"{data_path}: sidecar {side} is not valid TOML ({exc})") from None
     attrs: dict[str, Any] = {}
     tables: dict[str, dict[str, Any]] = {}
     for key, value in doc.items():
@@ -253,7 +254,8 @@ class NpzReader:
         attrs, tables = read_sidecar(path)
         arrays: dict[str, np.ndarray] = {}
         try:
-            with np.load(path, allow_pickle=False) as archive:
+            # numpy leaks its own file handle when the zip is damaged: pass ours.
+            with path.open("rb") as fh, np.load(fh, allow_pickle=False) as archive:
                 for key in archive.files:
                     if key in ("x", "y"):
                         continue
@@ -266,7 +268,8 @@ class NpzReader:
                                 "refused (store plain numeric arrays)") from None
                         raise
         except (zipfile.BadZipFile, EOFError) as exc:
-            raise UnreadableFileError(f"{path}: damaged or truncated .npz archive ({exc})") from None
+            raise UnreadableFileError(
+                f"{path}: damaged or truncated .npz archive ({exc})") from None
         unknown = sorted(set(tables) - set(arrays))
         if unknown:
             raise UnreadableFileError(

@@ -36,6 +36,9 @@ __all__ = [
     "display_scale",
     "format_bias",
     "format_current",
+    "format_time",
+    "format_uncertain",
+    "frame_warnings",
     "render_quicklook",
     "render_thumbnail",
     "robust_limits",
@@ -99,6 +102,26 @@ def format_current(current_A: float | None) -> str:
     if abs(current_A) < 1e-9:
         return f"{current_A * 1e12:.3g} pA"
     return f"{current_A * 1e9:.3g} nA"
+
+
+def format_uncertain(value: float | None, uncertainty: float | None, *, scale: float,
+                     unit: str, digits: int = 3) -> str:
+    """``value ± uncertainty unit`` in display units, rounded to the uncertainty's precision.
+
+    The uncertainty keeps two significant digits when its leading digit is 1 or 2, else one
+    (common practice for quoting a standard uncertainty); the value gets the same decimals.
+    Without an uncertainty the value is shown with ``digits`` significant digits.
+    """
+    if value is None:
+        return "—"
+    v = value * scale
+    if uncertainty is None or not uncertainty > 0:
+        return f"{v:.{digits}g} {unit}"
+    u = uncertainty * scale
+    e = math.floor(math.log10(u))
+    sig = 2 if u / 10.0**e < 3 else 1
+    d = max(0, sig - 1 - e)
+    return f"{v:.{d}f} ± {u:.{d}f} {unit}"
 
 
 def format_time(value: object) -> str:
@@ -246,7 +269,7 @@ def steepest_profile(
     if not (math.isfinite(t_lo) and math.isfinite(t_hi)) or t_hi <= t_lo:
         t_lo, t_hi = 0.0, 0.0
     step = min(abs(dx), abs(dy))
-    n = max(2, int(math.ceil((t_hi - t_lo) / step)) + 1)
+    n = max(2, math.ceil((t_hi - t_lo) / step) + 1)
     t = np.linspace(t_lo, t_hi, n)
     xs, ys = px + t * direction[0], py + t * direction[1]
     fi, fj = (xs - x[0]) / dx, (ys - y[0]) / dy
@@ -368,11 +391,12 @@ def render_quicklook(
     ax.set_xlabel("x (nm)")
     ax.set_ylabel("y (nm)")
     ax.tick_params(labelsize=8)
-    cb = fig.colorbar(im, ax=ax, shrink=0.92, pad=0.02, extend="both")
-    label = f"height ({unit})" if offset == 0 else \
-        f"height − {offset * nm:.4g} nm ({unit})"
-    cb.set_label(label, fontsize=9)
-    cb.ax.tick_params(labelsize=8)
+    if n_usable:  # without usable pixels a colour scale would only mislead
+        cb = fig.colorbar(im, ax=ax, shrink=0.92, pad=0.02, extend="both")
+        label = f"height ({unit})" if offset == 0 else \
+            f"height − {offset * nm:.4g} nm ({unit})"
+        cb.set_label(label, fontsize=9)
+        cb.ax.tick_params(labelsize=8)
 
     bar = _nice_length(width_nm)
     sb = AnchoredSizeBar(ax.transData, bar, _fmt_length(bar), loc="lower right", pad=0.35,
@@ -416,6 +440,10 @@ def render_quicklook(
             p_scale, p_unit = scale, unit
         axp.plot(dist, (hs - offset) * p_scale, color="#2b3a67", linewidth=1.2)
         axp.set_xlim(0, dist[-1] if dist[-1] > 0 else 1)
+        prof = (hs[np.isfinite(hs)] - offset) * p_scale
+        if prof.size and prof.max() - prof.min() < 2 * p_scale * 1e-12:
+            mid = (prof.max() + prof.min()) / 2  # flat line: show ±1 pm, not ±0.05
+            axp.set_ylim(mid - p_scale * 1e-12, mid + p_scale * 1e-12)
         axp.set_xlabel("distance along the line from A to B (nm)", fontsize=9)
         axp.set_ylabel(f"height ({p_unit})", fontsize=9)
         axp.set_title("height profile across the steepest feature", fontsize=9, loc="left")
@@ -424,8 +452,7 @@ def render_quicklook(
         step = _number(ds.attrs.get("step_height_m"))
         if step is not None:
             su = _number(ds.attrs.get("step_height_uncertainty_m"))
-            txt = f"fitted step height {step * 1e12:.0f}"
-            txt += f" ± {su * 1e12:.1g} pm" if su is not None else " pm"
+            txt = "fitted step height " + format_uncertain(step, su, scale=1e12, unit="pm")
             axp.text(0.99, 0.06, txt, transform=axp.transAxes, ha="right", va="bottom",
                      fontsize=8, bbox={"facecolor": "white", "alpha": 0.85,
                                        "edgecolor": "0.8", "boxstyle": "round,pad=0.25"})
