@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import difflib
 import hashlib
+import json
 import math
 import os
 import tomllib
@@ -229,8 +230,8 @@ def toml_value(v: Any) -> str:
         if not math.isfinite(v):
             raise ValueError(f"cannot write {v} to TOML")
         return repr(v)
-    if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, str):  # a JSON string literal is a valid TOML basic string
+        return json.dumps(v, ensure_ascii=False)
     if isinstance(v, list | tuple):
         return "[" + ", ".join(toml_value(x) for x in v) + "]"
     raise TypeError(f"cannot write {type(v).__name__} to TOML")

@@ -323,10 +323,11 @@ def _check_current_sign(current: np.ndarray, bias: float, name: str, source: str
         return
     signed = finite * math.copysign(1.0, bias)
     if np.median(signed) < 0 and np.mean(signed > 0) < 0.05:
+        sign = "negative" if bias > 0 else "positive"
         raise SignError(
-            f"{source}: variable '{name}' is negative throughout (median "
-            f"{np.median(finite):.3g} A) while bias_V = {bias:g} V: with a sample bias of "
-            "this sign the current must have the same sign")
+            f"{source}: variable '{name}' is {sign} throughout (median "
+            f"{np.median(finite):.3g} A) while bias_V = {bias:g} V: the current's sign must "
+            "follow the sample bias")
 
 
 def validate_raw_frame(ds: xr.Dataset, *, source: str = "") -> xr.Dataset:
@@ -360,6 +361,12 @@ def validate_raw_frame(ds: xr.Dataset, *, source: str = "") -> xr.Dataset:
             f"{src}: variable 'current' is missing (needed for constant-height frames)")
     shape = None
     for v in present:
+        if ds[v].dtype.kind not in "iuf":
+            raise ShapeError(f"{src}: variable '{v}' has data type {ds[v].dtype}; expected "
+                             "real numbers")
+        if set(ds[v].dims) == {"x", "y"} and ds[v].dims != ("y", "x"):
+            raise ShapeError(f"{src}: variable '{v}' has dimensions {ds[v].dims}; expected "
+                             "('y', 'x') (rows = slow axis)")
         if ds[v].ndim != 2:
             raise ShapeError(f"{src}: variable '{v}' has {ds[v].ndim} dimension(s); a frame "
                              "channel must be 2-D (y, x)")
@@ -373,14 +380,25 @@ def validate_raw_frame(ds: xr.Dataset, *, source: str = "") -> xr.Dataset:
         raise ShapeError(f"{src}: frame shape {shape} is too small (at least 2 x 2 pixels)")
 
     bias = _require_float(ds, "bias_V", src)
+    if bias == 0 and mode == "constant-current":
+        raise MissingAttributeError(f"{src}: attribute 'bias_V' = 0; a constant-current frame "
+                                    "needs a non-zero bias")
+    for opt in ("scan_center_x_m", "scan_center_y_m", "scan_angle_deg"):
+        if opt in ds.attrs:
+            _require_float(ds, opt, src)
+    for opt in ("current_limit_A", "piezo_z_m_per_V"):
+        if opt in ds.attrs:
+            _require_float(ds, opt, src, positive=True)
     _require_float(ds, "scan_size_x_m", src, positive=True)
     _require_float(ds, "scan_size_y_m", src, positive=True)
     _require_float(ds, "line_time_s", src, positive=True)
     parse_time(_require(ds, "start_time", src), source=src)
     if mode == "constant-current":
         sp = _require_float(ds, "setpoint_A", src, why="needed for constant-current frames")
-        if sp == 0:
-            raise MissingAttributeError(f"{src}: attribute 'setpoint_A' = 0; must be non-zero")
+        if sp == 0 or sp * bias < 0:
+            raise MissingAttributeError(
+                f"{src}: attribute 'setpoint_A' = {sp:g} with bias_V = {bias:g}; the setpoint "
+                "must be non-zero with the sign of the bias")
     slow = ds.attrs.get("slow_direction", "increasing")
     if slow not in ("increasing", "decreasing"):
         raise MissingAttributeError(
@@ -424,7 +442,8 @@ def validate_raw_frame(ds: xr.Dataset, *, source: str = "") -> xr.Dataset:
             msg = (f"{v}: {100 * bad.mean():.1f}% of pixels not recorded (NaN/Inf)"
                    + (f", {rows_missing} whole line(s)" if rows_missing else "")
                    + "; flagged")
-            warnings.append(msg)
+            if msg not in warnings:
+                warnings.append(msg)
         if v.startswith("current"):
             _check_current_sign(arr, bias, v, src)
         arrays[v] = arr
@@ -465,6 +484,10 @@ def validate_curves(ds: xr.Dataset, *, source: str = "") -> xr.Dataset:
     for v in ("z", "current"):
         if v not in ds.data_vars:
             raise MissingAttributeError(f"{src}: variable '{v}' is missing (needed for curves)")
+    for v in ("z", "current"):
+        if ds[v].dtype.kind not in "iuf":
+            raise ShapeError(f"{src}: variable '{v}' has data type {ds[v].dtype}; expected "
+                             "real numbers")
     z, cur = np.asarray(ds["z"].values, float), np.asarray(ds["current"].values, float)
     if z.ndim not in (1, 2) or z.shape != cur.shape:
         raise ShapeError(f"{src}: curve variables 'z' {z.shape} and 'current' {cur.shape} must "
@@ -482,13 +505,27 @@ def validate_curves(ds: xr.Dataset, *, source: str = "") -> xr.Dataset:
     z2, i2 = np.atleast_2d(z), np.atleast_2d(cur)
     if z2.shape[1] < 5:
         raise ShapeError(f"{src}: curves have {z2.shape[1]} samples; at least 5 are needed")
+    if bias == 0:
+        raise MissingAttributeError(f"{src}: attribute 'bias_V' = 0; approach curves need a "
+                                    "non-zero bias")
+    if "current_limit_A" in ds.attrs:
+        _require_float(ds, "current_limit_A", src, positive=True)
     for k in range(z2.shape[0]):
         ok = np.isfinite(z2[k]) & np.isfinite(i2[k])
         if not ok.any():
             raise NonFiniteDataError(f"{src}: curve {k} is entirely NaN/Inf")
+        if not np.any(i2[k][ok]):
+            raise NonFiniteDataError(f"{src}: curve {k} has zero current everywhere")
         _check_current_sign(i2[k], bias, f"current[{k}]", src)
     attrs = dict(ds.attrs)
     attrs.setdefault("curve_set_id", sanitize_id(attrs.get("source_stem") or "curves"))
+    n_bad = int((~(np.isfinite(z2) & np.isfinite(i2))).sum())
+    warnings = get_warnings(ds)
+    if n_bad:
+        msg = f"{n_bad} curve sample(s) not recorded (NaN/Inf); left out of the fits"
+        if msg not in warnings:
+            warnings.append(msg)
+    attrs[WARNINGS_ATTR] = json.dumps(warnings)
     return make_curves(z2, i2, attrs=attrs)
 
 

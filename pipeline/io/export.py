@@ -158,7 +158,8 @@ def _write_csv(ds: xr.Dataset, base: Path, meta: dict[str, Any]) -> list[Path]:
         f"isogap height export, frame {meta['frame_id']}, units m",
         f"pixel_size_x_m = {meta['pixel_size_x_m']!r}",
         f"pixel_size_y_m = {meta['pixel_size_y_m']!r}",
-        "rows = y (slow axis, row 0 first), columns = x (fast axis); nan = not recorded",
+        "layout: rows are y (slow axis, row 0 first), columns are x (fast axis); "
+        "nan marks pixels not recorded",
     ])
     np.savetxt(path, np.asarray(ds["height"].values, dtype=np.float32), fmt="%.9g",
                delimiter=",", header=header, comments="# ", encoding="utf-8")
