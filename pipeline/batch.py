@@ -45,6 +45,7 @@ from pipeline.io.store import (
     read_staged,
     staged_attrs,
     staged_frames,
+    staging_dir,
     write_store,
 )
 from pipeline.model import parse_time
@@ -52,7 +53,7 @@ from pipeline.stages.barrier import estimate_work_function
 from pipeline.stages.calibrate import z_scale_from_steps
 from pipeline.stages.drift import drift_table, fit_drift_model
 
-__all__ = ["Event", "RunSummary", "make_executor", "run_batch"]
+__all__ = ["Event", "RunSummary", "make_executor", "own_files", "run_batch"]
 
 log = logging.getLogger(__name__)
 
@@ -202,6 +203,11 @@ class RunSummary:
 # --------------------------------------------------------------------------------------------
 
 
+def own_files(store: Path) -> list[Path]:
+    """The store's own files, in case it is written inside the run folder."""
+    return [store, store.with_name(store.name + ".lock"), staging_dir(store)]
+
+
 def _run_key(config: Config, phi: float, phi_unc: float) -> str:
     """Hash of everything a staged frame depends on besides its source file."""
     relevant = {name: getattr(config, name).model_dump()
@@ -278,7 +284,8 @@ def run_batch(
     if inputs is None:
         if not run_dir.is_dir():
             raise ConfigError(f"run folder {run_dir} does not exist or is not a folder")
-        inputs = find_inputs(run_dir, recursive=config.input.recursive)
+        inputs = find_inputs(run_dir, recursive=config.input.recursive,
+                             exclude=own_files(store))
     summary = RunSummary(store=store, n_inputs=len(inputs))
     check_writable(store, expected_bytes=sum(p.stat().st_size for p in inputs if p.is_file()))
     with StoreLock(store):

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import logging
 import sys
+import time
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -142,6 +143,7 @@ class _Progress:
         self.live = err.is_terminal and not quiet
         self._bar: Any = None
         self._tasks: dict[str, Any] = {}
+        self._counts: dict[str, list[Any]] = {}
 
     def __enter__(self) -> _Progress:
         if self.live:
@@ -175,10 +177,26 @@ class _Progress:
         elif ev.kind == "pass":
             if self._bar is not None:
                 self._tasks[ev.name] = self._bar.add_task(ev.name, total=ev.total or None)
-            elif not self.quiet:
-                err.print(f"{ev.name}: {ev.total} task(s)", highlight=False)
-        elif ev.kind == "advance" and self._bar is not None and ev.name in self._tasks:
-            self._bar.advance(self._tasks[ev.name])
+            else:
+                self._counts[ev.name] = [0, ev.total, time.monotonic()]
+                if not self.quiet:
+                    err.print(f"{ev.name}: {ev.total} task(s)", highlight=False)
+        elif ev.kind == "advance":
+            if self._bar is not None and ev.name in self._tasks:
+                self._bar.advance(self._tasks[ev.name])
+            elif ev.name in self._counts and not self.quiet:
+                self._log_line(ev.name)
+
+    def _log_line(self, name: str) -> None:
+        """Plain progress for logs (cron, pipes): about every tenth of a pass."""
+        c = self._counts[name]
+        c[0] += 1
+        done, total, t0 = c
+        if total > 1 and (done == total or done % max(1, total // 10) == 0):
+            rate = done / max(time.monotonic() - t0, 1e-9)
+            eta = (total - done) / rate if rate > 0 else float("nan")
+            err.print(f"{name}: {done}/{total} done, {rate:.2f}/s, about {eta:.0f} s left",
+                      highlight=False)
 
 
 def _print_summary(summary: Any, *, quiet: bool) -> None:

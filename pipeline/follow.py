@@ -13,7 +13,7 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-from pipeline.batch import Event, RunSummary, run_batch
+from pipeline.batch import Event, RunSummary, own_files, run_batch
 from pipeline.config import Config
 from pipeline.errors import ConfigError
 from pipeline.io.readers import find_inputs
@@ -78,8 +78,9 @@ def follow_folder(
     try:
         while max_polls is None or polls < max_polls:
             polls += 1
-            stable, seen = stable_files(find_inputs(run_dir, recursive=config.input.recursive),
-                                        seen)
+            found = find_inputs(run_dir, recursive=config.input.recursive,
+                                exclude=own_files(Path(store)))
+            stable, seen = stable_files(found, seen)
             if stable and set(stable) != done:
                 summary = run_batch(run_dir, store, config, inputs=sorted(stable),
                                     on_event=on_event,

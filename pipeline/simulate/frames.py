@@ -208,7 +208,7 @@ def _truth(scan: _Scan, *, surface: Surface, backward: bool, attrs: dict[str, An
         "height_at_pixel": (dims, scan.h_fwd,
                             {"units": "m", "long_name": "surface height actually under the tip "
                              "(forward trace, with drift)"}),
-        "terrace_label": (dims, scan.terrace.astype(np.int16),
+        "terrace_label": (dims, scan.terrace.astype(np.int8),
                           {"units": "1", "long_name": "terrace level at the nominal position "
                            "(height = label x step_height_m above the level-0 terrace)"}),
         "adsorbate_mask": (dims, scan.adsorbate.astype(np.uint8),
@@ -243,9 +243,9 @@ def _truth(scan: _Scan, *, surface: Surface, backward: bool, attrs: dict[str, An
     return xr.Dataset(data, coords=coords, attrs=a)
 
 
-def _base_attrs(*, mode: str, bias_V: float, nx: int, ny: int, size_x_m: float,
-                size_y_m: float, center_x_m: float, center_y_m: float, line_time_s: float,
-                start_time: datetime, slow_direction: str, frame_id: str) -> dict[str, Any]:
+def _base_attrs(*, mode: str, bias_V: float, size_x_m: float, size_y_m: float,
+                center_x_m: float, center_y_m: float, line_time_s: float, start_time: datetime,
+                slow_direction: str, frame_id: str) -> dict[str, Any]:
     return {
         "mode": mode,
         "bias_V": float(bias_V),
@@ -447,9 +447,9 @@ def simulate_constant_current_frame(
     if z_units == "V":
         zf, zb = zf / piezo_z_m_per_V, zb / piezo_z_m_per_V
 
-    attrs = _base_attrs(mode="constant-current", bias_V=bias_V, nx=nx, ny=ny,
-                        size_x_m=size_x_m, size_y_m=size_y_m, center_x_m=center_x_m,
-                        center_y_m=center_y_m, line_time_s=line_time_s, start_time=start_time,
+    attrs = _base_attrs(mode="constant-current", bias_V=bias_V, size_x_m=size_x_m,
+                        size_y_m=size_y_m, center_x_m=center_x_m, center_y_m=center_y_m,
+                        line_time_s=line_time_s, start_time=start_time,
                         slow_direction=slow_direction, frame_id=frame_id)
     attrs["setpoint_A"] = sign * abs(setpoint_A)
     if z_units == "V":
@@ -623,9 +623,9 @@ def simulate_constant_height_frame(
     cf[lost] = np.nan
     cb[lost] = np.nan
 
-    attrs = _base_attrs(mode="constant-height", bias_V=bias_V, nx=nx, ny=ny,
-                        size_x_m=size_x_m, size_y_m=size_y_m, center_x_m=center_x_m,
-                        center_y_m=center_y_m, line_time_s=line_time_s, start_time=start_time,
+    attrs = _base_attrs(mode="constant-height", bias_V=bias_V, size_x_m=size_x_m,
+                        size_y_m=size_y_m, center_x_m=center_x_m, center_y_m=center_y_m,
+                        line_time_s=line_time_s, start_time=start_time,
                         slow_direction=slow_direction, frame_id=frame_id)
     attrs["setpoint_A"] = float(sign * reference_current_A
                                 * math.exp(-two_kappa * (tip_height_m - d_ref)))

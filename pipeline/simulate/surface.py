@@ -27,6 +27,10 @@ __all__ = [
 #: reference states list 4.08 Å). Any fcc metal works: pass its own value.
 AU_LATTICE_CONSTANT_M = 4.078e-10
 
+#: Adsorbate bumps are cut off at this many widths (there exp(−32) ≈ 1e-14 of their height), so
+#: far-away adsorbates cost nothing and the height stays the same function for any query.
+_ADSORBATE_CUTOFF_SIGMA = 8.0
+
 
 @dataclass(frozen=True)
 class Step:
@@ -65,7 +69,8 @@ class Step:
 
 @dataclass(frozen=True)
 class Adsorbate:
-    """A Gaussian bump ``height_m · exp(−|r − r₀|² / 2 sigma_m²)`` (an adsorbed molecule/atom)."""
+    """A Gaussian bump ``height_m · exp(−|r − r₀|² / 2 sigma_m²)`` (an adsorbed molecule/atom),
+    cut off beyond 8 ``sigma_m``."""
 
     x_m: float
     y_m: float
@@ -232,9 +237,15 @@ class Surface:
         """Summed height of the Gaussian adsorbates at (x, y), m."""
         x, y = np.broadcast_arrays(np.asarray(x, float), np.asarray(y, float))
         out = np.zeros(x.shape)
+        if x.size == 0 or not self.adsorbates:
+            return out
+        x0, x1, y0, y1 = x.min(), x.max(), y.min(), y.max()
         for ad in self.adsorbates:
+            cut = _ADSORBATE_CUTOFF_SIGMA * ad.sigma_m
+            if ad.x_m + cut < x0 or ad.x_m - cut > x1 or ad.y_m + cut < y0 or ad.y_m - cut > y1:
+                continue  # too far from every query point
             r2 = (x - ad.x_m) ** 2 + (y - ad.y_m) ** 2
-            out += ad.height_m * np.exp(-0.5 * r2 / ad.sigma_m**2)
+            out += np.where(r2 < cut**2, ad.height_m * np.exp(-0.5 * r2 / ad.sigma_m**2), 0.0)
         return out
 
     def height(self, x: ArrayLike, y: ArrayLike) -> np.ndarray:
@@ -253,6 +264,7 @@ def random_surface(
     extent_m: tuple[float, float, float, float],
     lattice_constant_m: float = AU_LATTICE_CONSTANT_M,
     n_steps: int = 3,
+    terrace_width_m: float | None = None,
     step_angle_deg: float = 20.0,
     step_angle_spread_deg: float = 6.0,
     max_curvature_per_m: float = 0.0,
@@ -267,16 +279,20 @@ def random_surface(
 ) -> Surface:
     """Draw a vicinal staircase surface covering ``extent_m = (x_min, x_max, y_min, y_max)``.
 
-    ``n_steps`` step edges, roughly perpendicular to ``step_angle_deg`` (each edge's normal
+    ``n_steps`` step edges (or, if ``terrace_width_m`` is given, as many as make terraces of
+    about that mean width across the extent), roughly perpendicular to ``step_angle_deg`` (each
+    edge's normal
     within ±``step_angle_spread_deg``, edges descending one monatomic level towards +normal),
     spread evenly with jitter across the extent; adsorbates at uniform random positions with
     heights and widths within ±30 % of the given values.
 
     Notes
     -----
-    Neighbouring edges get normals that differ by at most ``step_angle_spread_deg`` and are at
-    least ~60 % of the mean spacing apart at the centre, so with the defaults they do not cross
-    inside the extent; the terrace level then labels each terrace uniquely.
+    Edge centres are jittered by ±20 % of the mean spacing; the curvature and the spread of the
+    normals are capped so that, over the extent, bending and fanning move an edge by at most an
+    eighth of the spacing each way. Neighbouring edges therefore never cross inside the extent,
+    and the terrace level labels each terrace uniquely. On large extents the edges become
+    nearly straight and parallel (a regular vicinal staircase).
     """
     x0, x1, y0, y1 = (float(v) for v in extent_m)
     if not (x1 > x0 and y1 > y0):
@@ -286,13 +302,23 @@ def random_surface(
     th = math.radians(step_angle_deg)
     # half-length of the extent projected on the mean normal
     half = 0.5 * (abs((x1 - x0) * math.cos(th)) + abs((y1 - y0) * math.sin(th)))
+    if terrace_width_m is not None:
+        if terrace_width_m < 0:
+            raise ConfigError(f"surface: terrace_width_m = {terrace_width_m!r} must be >= 0 "
+                              "(0: no steps)")
+        n_steps = 0 if terrace_width_m == 0 else max(1, round(2.0 * half / terrace_width_m))
     steps: list[Step] = []
     if n_steps > 0:
         spacing = 2.0 * half / n_steps
+        # half-length of the extent along the edges: cap bending and fanning there so that
+        # neighbouring edges cannot meet (each may move by <= 1/8 of the spacing either way)
+        along = 0.5 * (abs((x1 - x0) * math.sin(th)) + abs((y1 - y0) * math.cos(th)))
+        curv_max = min(max_curvature_per_m, 0.25 * spacing / along**2)
+        spread = min(step_angle_spread_deg, math.degrees(0.25 * spacing / along))
         centres = -half + spacing * (np.arange(n_steps) + 0.5)
         centres = centres + rng.uniform(-0.2, 0.2, n_steps) * spacing
-        angles = step_angle_deg + rng.uniform(-0.5, 0.5, n_steps) * step_angle_spread_deg
-        curv = rng.uniform(-1.0, 1.0, n_steps) * max_curvature_per_m
+        angles = step_angle_deg + rng.uniform(-0.5, 0.5, n_steps) * spread
+        curv = rng.uniform(-1.0, 1.0, n_steps) * curv_max
         c0 = cx * math.cos(th) + cy * math.sin(th)
         for d, a, k in zip(centres, angles, curv, strict=True):
             steps.append(Step(offset_m=float(c0 + d), angle_deg=float(a),
