@@ -35,9 +35,10 @@ import numpy as np
 import xarray as xr
 
 from pipeline import tasks
+from pipeline._version import __version__
 from pipeline.config import Config, config_sha256, dump_toml
 from pipeline.errors import ConfigError, IsogapError
-from pipeline.io.readers import find_inputs
+from pipeline.io.readers import find_inputs, read_file
 from pipeline.io.store import (
     Failure,
     StoreLock,
@@ -49,7 +50,12 @@ from pipeline.io.store import (
     write_store,
 )
 from pipeline.model import parse_time
-from pipeline.stages.barrier import estimate_work_function
+from pipeline.stages.barrier import (
+    WorkFunctionEstimate,
+    combine_fit_tables,
+    estimate_work_function,
+    two_setpoint_work_function,
+)
 from pipeline.stages.calibrate import z_scale_from_steps
 from pipeline.stages.drift import drift_table, fit_drift_model
 
@@ -213,33 +219,66 @@ def _run_key(config: Config, phi: float, phi_unc: float) -> str:
     relevant = {name: getattr(config, name).model_dump()
                 for name in ("input", "height", "level", "quality")}
     relevant["work_function"] = [round(phi, 9), round(phi_unc, 9)]
+    relevant["software"] = __version__  # a new release recomputes; stage versions live in it
     return hashlib.sha256(json.dumps(relevant, sort_keys=True).encode()).hexdigest()[:16]
 
 
 def _work_function(
-    config: Config, tables: list[xr.Dataset], emit: Callable[[Event], None],
-) -> tuple[float, float, str, xr.Dataset | None]:
+    config: Config, surveys: list[tasks.SurveyResult], emit: Callable[[Event], None],
+) -> tuple[WorkFunctionEstimate, xr.Dataset | None]:
+    """The run's barrier height: from its curves, two setpoints, or the configured value."""
     b = config.barrier
+    fixed = WorkFunctionEstimate.fixed(b.work_function_eV, b.work_function_uncertainty_eV)
     if b.source == "fixed":
-        return b.work_function_eV, b.work_function_uncertainty_eV, "fixed", None
+        return fixed, None
     if b.source == "two-setpoint":
-        raise ConfigError("[barrier] source = 'two-setpoint' is not available in batch runs yet; "
-                          "use 'curves' or 'fixed'")
+        return _two_setpoint(config, surveys, emit), None
+    tables = [s.curve_table for s in surveys if s.curve_table is not None]
     if not tables:
         emit(Event("warning", message="no approach curves in the run: using the configured "
                    f"work function {b.work_function_eV} ± {b.work_function_uncertainty_eV} eV"))
-        return b.work_function_eV, b.work_function_uncertainty_eV, "fixed (no curves)", None
-    table = xr.concat(tables, dim="curve")
+        return WorkFunctionEstimate.fixed(b.work_function_eV, b.work_function_uncertainty_eV,
+                                          note="no approach curves in the run"), None
+    table = combine_fit_tables(tables)
     try:
         est = estimate_work_function(table, outlier_threshold_sigma=b.outlier_threshold_sigma)
     except IsogapError as exc:
-        emit(Event("warning", message=f"work function from curves failed ({exc}); using the "
-                   f"configured {b.work_function_eV} eV"))
-        return b.work_function_eV, b.work_function_uncertainty_eV, "fixed (curves failed)", table
+        emit(Event("warning", message=f"work function from the curves failed ({exc}); using "
+                   f"the configured {b.work_function_eV} eV"))
+        return WorkFunctionEstimate.fixed(b.work_function_eV, b.work_function_uncertainty_eV,
+                                          note=f"curves unusable: {exc}"), table
     for cid, why in est.rejected:
         emit(Event("warning", message=f"approach curve {cid} rejected: {why}"))
-    table = est.table() if hasattr(est, "table") else table
-    return est.work_function_eV, est.work_function_uncertainty_eV, est.method, table
+    return est, est.updated_table(table)
+
+
+def _two_setpoint(
+    config: Config, surveys: list[tasks.SurveyResult], emit: Callable[[Event], None],
+) -> WorkFunctionEstimate:
+    """φ from the first two constant-current frames of one area at different setpoints."""
+    def area(a: dict[str, Any]) -> tuple:
+        return tuple(round(float(a.get(k, 0.0)) * 1e12) for k in (
+            "scan_center_x_m", "scan_center_y_m", "scan_size_x_m", "scan_size_y_m"))
+
+    cc = [s for s in surveys if s.kind == "frame" and not s.failure
+          and s.attrs.get("mode") == "constant-current"]
+    cc.sort(key=lambda s: str(s.attrs.get("start_time")))
+    for a, b in itertools.pairwise(cc):
+        if area(a.attrs) == area(b.attrs) and not np.isclose(
+                float(a.attrs["setpoint_A"]), float(b.attrs["setpoint_A"]), rtol=0.05):
+            pin = config.input.piezo_z_m_per_V
+            try:
+                est = two_setpoint_work_function(read_file(a.path, piezo_z_m_per_V=pin),
+                                                 read_file(b.path, piezo_z_m_per_V=pin))
+            except IsogapError as exc:
+                emit(Event("warning", message=f"setpoint pair {Path(a.path).name}, "
+                           f"{Path(b.path).name} unusable: {exc}"))
+                continue
+            emit(Event("warning", message=f"work function from the setpoint pair "
+                       f"{Path(a.path).name}, {Path(b.path).name}"))
+            return est
+    raise ConfigError("[barrier] source = 'two-setpoint' needs two successive constant-current "
+                      "frames of the same area at different setpoints; the run has none")
 
 
 def _pass(
@@ -315,7 +354,6 @@ def _run(
         surveys.append(res)
     surveys.sort(key=lambda r: r.path)
     frames = [s for s in surveys if s.kind == "frame" and not s.failure]
-    curve_tables = [s.curve_table for s in surveys if s.curve_table is not None]
     summary.n_curves_files = sum(1 for s in surveys if s.kind == "curve")
 
     # duplicate frame ids would overwrite each other's staged result: refuse the later ones
@@ -332,7 +370,8 @@ def _run(
     frames = unique
 
     # 2. work function
-    phi, phi_unc, method, table = _work_function(config, curve_tables, emit)
+    estimate, table = _work_function(config, surveys, emit)
+    phi, phi_unc = estimate.work_function_eV, estimate.work_function_uncertainty_eV
     summary.work_function_eV, summary.work_function_uncertainty_eV = phi, phi_unc
     run_key = _run_key(config, phi, phi_unc)
 
@@ -365,9 +404,7 @@ def _run(
     order = sorted(staged_paths, key=lambda fid: (parse_time(starts[fid]), fid))
 
     run_attrs: dict[str, Any] = {
-        "work_function_eV": phi,
-        "work_function_uncertainty_eV": phi_unc,
-        "barrier_method": method,
+        **estimate.to_attrs(),
         "config_toml": dump_toml(config),
         "config_sha256": config_sha256(config),
         "n_inputs": len(inputs),

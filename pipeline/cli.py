@@ -351,10 +351,9 @@ def barrier(
     config: ConfigOpt = None,
 ) -> None:
     """Fit approach curves: a per-curve table and the run's work-function estimate."""
-    import xarray as xr
-
     from pipeline.io.readers import read_file
-    from pipeline.stages.barrier import estimate_work_function, fit_curves
+    from pipeline.stages.barrier import combine_fit_tables, estimate_work_function, fit_curves
+    from pipeline.tasks import curve_fit_options
 
     try:
         cfg = _load_config(config)
@@ -364,13 +363,13 @@ def barrier(
             if ds.attrs.get("kind") != "curve":
                 raise ProcessingError(f"{f}: holds a frame, not approach curves")
             curves.append(ds)
-            tables.append(fit_curves(ds, min_points=cfg.barrier.min_points))
-        table = xr.concat(tables, dim="curve")
+            tables.append(fit_curves(ds, **curve_fit_options(cfg)))
+        table = combine_fit_tables(tables)
         est = estimate_work_function(
             table, outlier_threshold_sigma=cfg.barrier.outlier_threshold_sigma)
     except IsogapError as exc:
         raise _fail(str(exc)) from None
-    table = est.table() if hasattr(est, "table") else table
+    table = est.updated_table(table)
     t = Table(title="approach-curve fits")
     for col in ("curve", "φ_ap / eV", "± / eV", "range / nm", "points", "used", "reason"):
         t.add_column(col)

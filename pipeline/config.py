@@ -80,6 +80,24 @@ class BarrierConfig(_Section):
         "the run's weighted mean are rejected")
     bias_correction: bool = Field(
         False, description="also fit the numerical WKB model to report a bias-corrected barrier")
+    barrier_profile: Literal["trapezoid", "image-force"] = Field(
+        "trapezoid", description="barrier shape of that WKB model: trapezoid (bias only) or "
+        "image-force (bias and image-force lowering)")
+    noise_floor_A: float | None = Field(
+        None, ge=0, le=1e-6, description="standard deviation of the additive current noise of "
+        "approach curves (unset = estimated from each curve's retracted tail)")
+    current_limit_A: float | None = Field(
+        None, gt=0, le=1.0, description="preamplifier saturation level of approach curves "
+        "(unset = the file's current_limit_A attribute, else detected from clipped samples)")
+    floor_threshold_sigma: float = Field(
+        5.0, ge=1.0, le=100.0, description="the fit range keeps samples whose fitted current "
+        "exceeds this many noise-floor standard deviations")
+    tip_change_threshold_sigma: float = Field(
+        8.0, gt=0, le=1000, description="a jump or change of slope within a curve that improves "
+        "a two-segment fit by more than this many standard deviations rejects it as a tip change")
+    reject_contact_curves: bool = Field(
+        True, description="reject curves whose closest part levels off below saturation (point "
+        "contact); the fit range excludes that part either way")
 
 
 class HeightConfig(_Section):
@@ -107,9 +125,29 @@ class LevelConfig(_Section):
     robust: bool = Field(True, description="iteratively reweighted fit (adsorbates, steps)")
     line_offsets: bool = Field(True, description="remove per-line offsets by robust matching")
     line_slopes: bool = Field(False, description="also remove per-line slopes")
-    terraces: bool = Field(True, description="segment terraces; one common plane plus one "
-                           "offset per terrace; report step heights")
+    terraces: bool = Field(True, description="segment terraces; one common plane (the "
+                           "polynomial when method = \"polynomial\") plus one offset per "
+                           "terrace; report step heights")
     scars: bool = Field(True, description="detect, flag and repair short streaks in one line")
+    min_terrace_px: int = Field(
+        256, ge=4, le=100_000_000, description="regions between height edges smaller than "
+        "this many pixels are not terraces (adsorbates, fragments)")
+    min_step_height_m: float = Field(
+        5e-11, gt=0, le=1e-8, description="height differences below this are not steps: "
+        "neighbouring regions closer in level are one terrace; smaller persistent line jumps "
+        "are line offsets, m")
+    edge_threshold_sigma: float = Field(
+        6.0, gt=0, le=1000, description="terrace edges: smoothed height gradient above the "
+        "median by this many robust standard deviations")
+    line_step_threshold_sigma: float = Field(
+        5.0, gt=0, le=1000, description="a persistent jump between lines is kept as a step "
+        "parallel to the fast axis above this many standard deviations of the line-offset noise")
+    scar_threshold_sigma: float = Field(
+        6.0, gt=0, le=1000, description="scar pixels deviate from the lines above and below "
+        "by more than this many robust standard deviations")
+    scar_max_length_px: int = Field(
+        32, ge=1, le=100_000, description="longest streak along a line repaired as a scar, "
+        "pixels")
 
 
 class DriftConfig(_Section):
@@ -134,7 +172,11 @@ class CalibrateConfig(_Section):
         None, gt=0, le=1e-8, description="true monatomic step height (e.g. a/sqrt(3) for "
         "fcc(111)); when set, z is rescaled so measured steps match it")
     lattice_constant_m: float | None = Field(
-        None, gt=0, le=1e-8, description="surface lattice period for the lateral calibration")
+        None, gt=0, le=1e-8, description="surface lattice period (nearest-neighbour distance, "
+        "e.g. a/sqrt(2) for fcc(111)) for the lateral calibration, m")
+    min_lattice_peak_snr: float = Field(
+        30.0, gt=1, le=1e12, description="each first-order lattice peak must stand this many "
+        "times above the spectral background, else the frame is not atomically resolved")
 
 
 class QualityConfig(_Section):
@@ -143,6 +185,12 @@ class QualityConfig(_Section):
     tip_change_threshold_sigma: float = Field(
         8.0, gt=0, le=1000, description="line-to-line jumps larger than this many robust "
         "standard deviations that persist count as tip changes")
+    bad_pixel_fraction_limit: float = Field(
+        0.01, ge=0, le=1, description="a frame with a larger fraction of unusable pixels (not "
+        "recorded, saturated, below the noise floor, outside) is flagged")
+    trace_mismatch_fraction_limit: float = Field(
+        0.02, ge=0, le=1, description="a frame whose forward and backward traces disagree on a "
+        "larger fraction of pixels is flagged")
 
 
 class Config(_Section):

@@ -11,6 +11,7 @@ from collections.abc import Callable
 import numpy as np
 from numpy.typing import ArrayLike
 from scipy import constants as _c
+from scipy import optimize
 from scipy.special import digamma
 
 from pipeline.errors import ProcessingError
@@ -23,6 +24,7 @@ __all__ = [
     "barrier_profile_image_force",
     "barrier_profile_trapezoid",
     "decay_constant",
+    "gap_for_current",
     "height_from_current",
     "image_potential_eV",
     "simmons_current_density",
@@ -390,3 +392,41 @@ def wkb_current(
     integral = t @ (weights * window)  # eV
     current = channels * CONDUCTANCE_QUANTUM_S * integral  # (2e²/h)·∫T dE[eV] = A
     return np.sign(v) * current.reshape(s.shape)
+
+
+def gap_for_current(
+    current_A: float,
+    bias_V: float,
+    phi_eV: float,
+    *,
+    profile: str | Callable[..., np.ndarray] = "trapezoid",
+    channels: float = 1.0,
+    bracket_m: tuple[float, float] = (0.05e-9, 5e-9),
+) -> float:
+    """Gap (m) at which :func:`wkb_current` carries ``|current_A|`` at ``bias_V``.
+
+    With one channel this is the usual estimate of the absolute tip-sample distance from the
+    current level (the conductance I/V compared with G₀ = 2e²/h).
+
+    Raises
+    ------
+    ProcessingError
+        If no gap in ``bracket_m`` gives that current.
+
+    References
+    ----------
+    R. Landauer, IBM J. Res. Dev. 1, 223 (1957), doi:10.1147/rd.13.0223; Simmons (1963).
+    """
+    target = np.log(abs(float(current_A)))
+
+    def f(log_gap: float) -> float:
+        i = wkb_current(np.exp(log_gap), bias_V, phi_eV=phi_eV, profile=profile,
+                        channels=channels)
+        return float(np.log(abs(float(i))) - target)
+
+    lo, hi = np.log(bracket_m[0]), np.log(bracket_m[1])
+    if f(lo) * f(hi) > 0:
+        raise ProcessingError(
+            f"no gap between {bracket_m[0]:.3g} and {bracket_m[1]:.3g} m carries "
+            f"{abs(current_A):.3g} A at {bias_V:g} V with phi = {phi_eV:g} eV")
+    return float(np.exp(optimize.brentq(f, lo, hi, xtol=1e-7)))

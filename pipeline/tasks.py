@@ -22,16 +22,17 @@ from pipeline.errors import IsogapError
 from pipeline.io.readers import file_sha256, read_file
 from pipeline.io.store import Failure, read_staged, write_staged
 from pipeline.model import BAD_PIXELS, get_warnings, parse_time
-from pipeline.stages.barrier import fit_curves
+from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, fit_curves
 from pipeline.stages.calibrate import scale_height
 from pipeline.stages.drift import DriftModel, correct_drift, measure_frame_shift
 from pipeline.stages.height import reconstruct_height
 from pipeline.stages.level import level_lines, level_terraces, repair_scars, subtract_background
-from pipeline.stages.quality import assess_quality
+from pipeline.stages.quality import assess_quality, flag_tip_changes
 
 __all__ = [
     "FrameSummary",
     "SurveyResult",
+    "curve_fit_options",
     "finalize_frame",
     "process_frame",
     "register_pair",
@@ -76,6 +77,11 @@ def _failure(path: str, stage: str, exc: BaseException) -> Failure:
     return Failure(file=path, stage=stage, message=msg)
 
 
+def curve_fit_options(config: Config) -> dict[str, Any]:
+    """The ``[barrier]`` keys that are :func:`fit_curves` arguments."""
+    return config.barrier.model_dump(include=set(FIT_CURVES_CONFIG_KEYS))
+
+
 def survey_file(path: str, config: Config) -> SurveyResult:
     """Read one input; fit its approach curves if it holds curves, else note the frame's attrs."""
     res = SurveyResult(path=path)
@@ -89,8 +95,7 @@ def survey_file(path: str, config: Config) -> SurveyResult:
     res.attrs = {k: v for k, v in ds.attrs.items() if isinstance(v, str | int | float)}
     if res.kind == "curve":
         try:
-            b = config.barrier
-            res.curve_table = fit_curves(ds, min_points=b.min_points)
+            res.curve_table = fit_curves(ds, **curve_fit_options(config))
         except Exception as exc:
             res.failure = _failure(path, "fit_curves", exc)
     return res
@@ -119,21 +124,35 @@ def process_frame(
             combine_traces=h.combine_traces, trace_mismatch_sigma=h.trace_mismatch_sigma,
             noise_floor_A=h.noise_floor_A, current_noise_A=h.current_noise_A)
         del raw
+        # before levelling: line levelling would remove the jumps that mark a tip change
+        stage = "flag_tip_changes"
+        ds = flag_tip_changes(ds, threshold_sigma=q.tip_change_threshold_sigma)
         if lv.scars:
             stage = "repair_scars"
-            ds = repair_scars(ds)
+            ds = repair_scars(ds, threshold_sigma=lv.scar_threshold_sigma,
+                              max_length_px=lv.scar_max_length_px)
         if lv.line_offsets:
             stage = "level_lines"
-            ds = level_lines(ds, slopes=lv.line_slopes)
-        if lv.method != "none":
+            ds = level_lines(ds, slopes=lv.line_slopes,
+                             step_threshold_sigma=lv.line_step_threshold_sigma,
+                             min_step_height_m=lv.min_step_height_m)
+        if lv.terraces:
+            # one common background plus one offset per terrace; a background subtracted
+            # before it would be refitted (plane) or would eat into the staircase (polynomial)
+            stage = "level_terraces"
+            ds = level_terraces(ds, min_terrace_px=lv.min_terrace_px,
+                                min_step_height_m=lv.min_step_height_m,
+                                edge_threshold_sigma=lv.edge_threshold_sigma,
+                                order=lv.polynomial_order if lv.method == "polynomial" else 1,
+                                robust=lv.robust)
+        elif lv.method != "none":
             stage = "subtract_background"
             ds = subtract_background(ds, method=lv.method, order=lv.polynomial_order,
                                      robust=lv.robust)
-        if lv.terraces:
-            stage = "level_terraces"
-            ds = level_terraces(ds)
         stage = "assess_quality"
-        ds = assess_quality(ds, tip_change_threshold_sigma=q.tip_change_threshold_sigma)
+        ds = assess_quality(ds, tip_change_threshold_sigma=q.tip_change_threshold_sigma,
+                            bad_pixel_fraction_limit=q.bad_pixel_fraction_limit,
+                            trace_mismatch_fraction_limit=q.trace_mismatch_fraction_limit)
         ds.attrs["run_key"] = run_key
         stage = "stage-write"
         out.staged = str(write_staged(store, "frames", ds.attrs["frame_id"], ds))

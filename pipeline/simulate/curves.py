@@ -15,7 +15,7 @@ from typing import Any, Literal
 import numpy as np
 import xarray as xr
 from numpy.typing import ArrayLike
-from scipy import optimize, signal
+from scipy import signal
 
 from pipeline import physics
 from pipeline.errors import ConfigError
@@ -38,15 +38,6 @@ def _ar1_noise(rng: np.random.Generator, shape: tuple[int, int], rho: float) -> 
     # y[0] = white[0]; y[n] = rho*y[n-1] + c*white[n]; lfilter's state zi = rho*y[0]
     out, _ = signal.lfilter([c], [1.0, -rho], white[:, 1:], axis=1, zi=rho * white[:, :1])
     return np.concatenate([white[:, :1], out], axis=1)
-
-
-def _gap_for_current(current_A: float, bias_V: float, phi_eV: float, profile: str) -> float:
-    """Gap at which one conductance channel carries ``current_A`` (WKB model)."""
-    def f(log_gap: float) -> float:
-        i = physics.wkb_current(np.exp(log_gap), bias_V, phi_eV=phi_eV, profile=profile)
-        return float(np.log(abs(i)) - np.log(current_A))
-
-    return float(np.exp(optimize.brentq(f, np.log(0.05e-9), np.log(3e-9), xtol=1e-6)))
 
 
 def simulate_approach_curves(
@@ -114,7 +105,8 @@ def simulate_approach_curves(
         preamplifier limit.
     tip_change_fraction : float
         Fraction of curves (rounded) with an abrupt tip change mid-curve: from a random sample
-        on, ln I jumps by 0.3–1.0 and the barrier changes by 0.5–1.5 eV.
+        within ±0.1 nm of the setpoint on, ln I jumps by 0.3–1.0 and the barrier changes by
+        0.5–1.5 eV.
     model : {"exponential", "wkb"}
         ``"exponential"``: I = I_set·exp(−2κz) exactly (apparent barrier = φ);
         ``"wkb"``: the numerical WKB current (:func:`pipeline.physics.wkb_current`) through the
@@ -175,8 +167,8 @@ def simulate_approach_curves(
             log_i[k] = np.log(setpoint_current_A) - 2.0 * physics.decay_constant(phi[k]) * z
             phi_ap[k] = phi[k]
         else:
-            d0 = gap_at_setpoint_m or _gap_for_current(setpoint_current_A, bias_V, phi[k],
-                                                       profile)
+            d0 = gap_at_setpoint_m or physics.gap_for_current(
+                setpoint_current_A, bias_V, phi[k], profile=profile)
             gaps[k] = d0
             gap = np.maximum(d0 + z, 0.02e-9)
             cur = np.abs(physics.wkb_current(gap, bias_V, phi_eV=phi[k], profile=profile))
