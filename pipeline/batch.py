@@ -233,7 +233,10 @@ def _work_function(
         return fixed, None
     if b.source == "two-setpoint":
         return _two_setpoint(config, surveys, emit), None
-    tables = [s.curve_table for s in surveys if s.curve_table is not None]
+    tables = [s.curve_table for s in surveys if s.curve_table is not None
+              and (b.grid_curves_in_estimate or s.barrier_map is None)]
+    if not tables:  # a run with only grid curves: use those after all
+        tables = [s.curve_table for s in surveys if s.curve_table is not None]
     if not tables:
         emit(Event("warning", message="no approach curves in the run: using the configured "
                    f"work function {b.work_function_eV} ± {b.work_function_uncertainty_eV} eV"))
@@ -351,6 +354,8 @@ def _run(
                      [(str(p), config) for p in inputs], emit):
         if res.failure:
             fail(res.failure)
+        for w in res.warnings:
+            emit(Event("warning", message=w))
         surveys.append(res)
     surveys.sort(key=lambda r: r.path)
     frames = [s for s in surveys if s.kind == "frame" and not s.failure]
@@ -466,8 +471,10 @@ def _run(
     run_ds = xr.merge(run_tables, combine_attrs="drop") if run_tables else xr.Dataset()
     run_ds.attrs = run_attrs
     finals_sorted = sorted(finals, key=lambda p: order.index(Path(p).stem))
+    maps = [(f"maps/{s.attrs.get('curve_set_id', Path(s.path).stem)}", s.barrier_map)
+            for s in surveys if s.barrier_map is not None]
     write_store(store, frames=(read_staged(p) for p in finals_sorted), run=run_ds,
-                failures=summary.failures, title=config.run.title,
+                failures=summary.failures, title=config.run.title, extra_groups=maps,
                 history=history or f"isogap process ({datetime.now(UTC):%Y-%m-%d})")
     emit(Event("advance", name="writing store"))
 

@@ -78,6 +78,9 @@ class BarrierConfig(_Section):
     outlier_threshold_sigma: float = Field(
         3.0, gt=0, le=100, description="curves further than this many standard deviations from "
         "the run's weighted mean are rejected")
+    grid_curves_in_estimate: bool = Field(
+        False, description="also pool curves recorded on a grid (which make a barrier map) into "
+        "the run's work function; by default the map's curves only make the map")
     bias_correction: bool = Field(
         False, description="also fit the numerical WKB model to report a bias-corrected barrier")
     barrier_profile: Literal["trapezoid", "image-force"] = Field(
@@ -163,6 +166,18 @@ class DriftConfig(_Section):
         "constant", description="drift velocity model over the run: constant or smooth")
     correct_within_frames: bool = Field(
         True, description="move each pixel back by the drift during its own acquisition")
+    smooth_degree: int = Field(
+        2, ge=1, le=6, description="polynomial degree of position against time when "
+        "model = \"smooth\"")
+    outlier_threshold_sigma: float = Field(
+        4.0, gt=0, le=100, description="frame pairs further than this many standard deviations "
+        "from the drift model are excluded, one at a time")
+    interpolation_order: Literal[1, 3] = Field(
+        1, description="interpolation of the corrected frames: 1 (linear) or 3 (cubic spline)")
+    correction_reference: Literal["run-start", "frame-mid"] = Field(
+        "run-start", description="run-start: corrected frames show the surface as at the run "
+        "start (the whole frame moves by the drift since then); frame-mid: only the drift "
+        "within each frame is undone")
 
 
 class CalibrateConfig(_Section):

@@ -22,7 +22,7 @@ from pipeline.errors import IsogapError
 from pipeline.io.readers import file_sha256, read_file
 from pipeline.io.store import Failure, read_staged, write_staged
 from pipeline.model import BAD_PIXELS, get_warnings, parse_time
-from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, fit_curves
+from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, apparent_barrier_map, fit_curves
 from pipeline.stages.calibrate import scale_height
 from pipeline.stages.drift import DriftModel, correct_drift, measure_frame_shift
 from pipeline.stages.height import reconstruct_height
@@ -49,6 +49,8 @@ class SurveyResult:
     sha256: str = ""
     attrs: dict[str, Any] = field(default_factory=dict)
     curve_table: xr.Dataset | None = None
+    barrier_map: xr.Dataset | None = None
+    warnings: list[str] = field(default_factory=list)
     failure: Failure | None = None
 
 
@@ -98,7 +100,26 @@ def survey_file(path: str, config: Config) -> SurveyResult:
             res.curve_table = fit_curves(ds, **curve_fit_options(config))
         except Exception as exc:
             res.failure = _failure(path, "fit_curves", exc)
+            return res
+        if _on_grid(ds):  # curves recorded on a grid of positions also give a map of φ_ap
+            try:
+                res.barrier_map = apparent_barrier_map(ds, **curve_fit_options(config))
+            except IsogapError as exc:
+                res.warnings.append(f"{path}: no barrier map from the curve grid ({exc})")
     return res
+
+
+def _on_grid(curves: xr.Dataset, tolerance_m: float = 1e-12) -> bool:
+    """True if the curves' positions fill a regular grid of at least 2 × 2 nodes."""
+    if "position_x_m" not in curves.attrs or "position_y_m" not in curves.attrs:
+        return False
+    x = np.atleast_1d(np.asarray(curves.attrs["position_x_m"], dtype=float))
+    y = np.atleast_1d(np.asarray(curves.attrs["position_y_m"], dtype=float))
+    if x.size != curves.sizes["curve"] or y.size != x.size or x.size < 4:
+        return False
+    nx = np.unique(np.round(x / tolerance_m)).size
+    ny = np.unique(np.round(y / tolerance_m)).size
+    return nx >= 2 and ny >= 2 and nx * ny == x.size
 
 
 def process_frame(

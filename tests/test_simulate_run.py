@@ -17,6 +17,7 @@ from pipeline.io import find_inputs, read_file
 from pipeline.io.simrun import TRUTH_HEIGHT_RESOLUTION_M, format_run_toml, write_run
 from pipeline.model import parse_time
 from pipeline.simulate import preset, simulate_run
+from pipeline.stages.barrier import apparent_barrier_map
 
 SAMPLE_DIR = Path(__file__).resolve().parents[1] / "sample_scans" / "night-01"
 #: The seed the shipped sample run was made with (sample_scans/README.md).
@@ -140,7 +141,7 @@ def test_sample_preset_size_and_contents(tmp_path):
     curves = [d for d in kinds if d.attrs["kind"] == "curve"]
     modes = [d.attrs["mode"] for d in frames]
     assert modes.count("constant-current") == 9 and modes.count("constant-height") == 2
-    assert len(curves) == 2 and all(c.sizes["curve"] == 8 for c in curves)
+    assert sorted(c.sizes["curve"] for c in curves) == [8, 8, 16]  # two sets + one 4 x 4 grid
     assert {p.suffix for p in inputs} == {".nc", ".npz", ".txt"}
     run = tomllib.loads((out / "truth" / "run.toml").read_text())
     # drift about 0.5 nm/min (the sample scenario)
@@ -202,6 +203,103 @@ def _same_attrs(new, old, skip) -> bool:
     return set(new.attrs) - skip == set(old.attrs) - skip
 
 
+def _grid_record(truth: dict) -> dict:
+    (rec,) = [c for c in truth["curves"] if c.get("on_grid")]
+    return rec
+
+
+def _assert_regular_grid(px, py, *, nx: int, ny: int, pitch: float, center: tuple) -> None:
+    """Positions row by row (x fastest) on an ``ny × nx`` grid of ``pitch`` around ``center``."""
+    px = np.asarray(px, float).reshape(ny, nx)
+    py = np.asarray(py, float).reshape(ny, nx)
+    tol = 1e-6 * pitch  # float round-off of sums of nm-sized numbers
+    np.testing.assert_allclose(np.diff(px, axis=1), pitch, rtol=0, atol=tol)
+    np.testing.assert_allclose(np.diff(py, axis=0), pitch, rtol=0, atol=tol)
+    # columns share x, rows share y
+    np.testing.assert_allclose(px, np.broadcast_to(px[:1], (ny, nx)), rtol=0, atol=tol)
+    np.testing.assert_allclose(py, np.broadcast_to(py[:, :1], (ny, nx)), rtol=0, atol=tol)
+    assert px.mean() == pytest.approx(center[0], abs=tol)
+    assert py.mean() == pytest.approx(center[1], abs=tol)
+
+
+def test_curve_grid_positions_and_true_barrier_patch():
+    # a non-square grid, so that nx (columns, along x) and ny (rows, along y) cannot be swapped
+    spec = preset("tiny").replace(curve_grid_files=1, curve_grid_shape=(4, 3),
+                                  curve_grid_pitch_m=0.8e-9, curve_grid_phi_step_eV=-0.7)
+    files, truth = simulate_run(spec, seed=9)
+    rec = _grid_record(truth)
+    ds = next(f.dataset for f in files if f.name == rec["file"])
+    assert ds.sizes["curve"] == rec["n_curves"] == 12
+    center = (rec["grid_center_x_m"], rec["grid_center_y_m"])
+    _assert_regular_grid(ds.attrs["position_x_m"], ds.attrs["position_y_m"], nx=4, ny=3,
+                         pitch=0.8e-9, center=center)
+    np.testing.assert_array_equal(rec["position_x_m"], ds.attrs["position_x_m"])
+    # the grid lies inside the main window of its time (tiny: 12 nm frames, no window moves)
+    half = 0.5 * spec.scan_size_m
+    assert np.all(np.abs(ds.attrs["position_x_m"]) < half)
+    assert np.all(np.abs(ds.attrs["position_y_m"]) < half)
+    # true barrier per node: phi_eV left of the grid centre, phi_eV + step right of it
+    phi = np.asarray(rec["phi_eV"]).reshape(3, 4)
+    np.testing.assert_array_equal(phi[:, :2], 4.6)
+    np.testing.assert_allclose(phi[:, 2:], 4.6 - 0.7, rtol=1e-15)
+    # the ordinary curve file of the tiny preset is still there and unchanged in size
+    assert [c["n_curves"] for c in truth["curves"] if not c.get("on_grid")] == [4]
+
+
+def test_shipped_grid_file_positions_form_the_requested_grid():
+    run = tomllib.loads((SAMPLE_DIR / "truth" / "run.toml").read_text())
+    rec = _grid_record(run)
+    spec = preset("sample")
+    nx, ny = spec.curve_grid_shape
+    assert (nx, ny) == (rec["grid_nx"], rec["grid_ny"]) == (4, 4)
+    ds = read_file(SAMPLE_DIR / rec["file"])
+    assert ds.sizes["curve"] == 16
+    _assert_regular_grid(ds.attrs["position_x_m"], ds.attrs["position_y_m"], nx=nx, ny=ny,
+                         pitch=spec.curve_grid_pitch_m,
+                         center=(rec["grid_center_x_m"], rec["grid_center_y_m"]))
+
+
+@pytest.mark.parametrize("source", ["shipped", "tiny-seed-21"])
+def test_barrier_map_of_the_curve_grid_recovers_the_true_barrier(source):
+    if source == "shipped":
+        run = tomllib.loads((SAMPLE_DIR / "truth" / "run.toml").read_text())
+        rec = _grid_record(run)
+        ds = read_file(SAMPLE_DIR / rec["file"])  # through the readers, as the batch does
+        step = preset("sample").curve_grid_phi_step_eV
+    else:
+        step = -0.4
+        spec = preset("tiny").replace(curve_grid_files=1, curve_grid_phi_step_eV=step,
+                                      curve_samples=200, curve_tip_change_fraction=0.125)
+        files, truth = simulate_run(spec, seed=21)
+        rec = _grid_record(truth)
+        ds = next(f.dataset for f in files if f.name == rec["file"])
+    m = apparent_barrier_map(ds)
+    assert m.sizes == {"y": 4, "x": 4}
+    # node of each curve on the map
+    ix = np.abs(m.x.values[None, :] - np.asarray(rec["position_x_m"])[:, None]).argmin(axis=1)
+    iy = np.abs(m.y.values[None, :] - np.asarray(rec["position_y_m"])[:, None]).argmin(axis=1)
+    assert len(set(zip(iy.tolist(), ix.tolist(), strict=True))) == 16  # one curve per node
+    phi_fit = m.phi_ap_eV.values[iy, ix].astype(float)
+    sigma = m.phi_ap_uncertainty_eV.values[iy, ix].astype(float)
+    # truth: simulator ground truth (truth/run.toml [[curves]] phi_eV per curve; the
+    # exponential curve model makes the apparent barrier equal to it)
+    phi_true = np.asarray(rec["phi_eV"], float)
+    accepted = m.accepted.values[iy, ix].astype(bool)
+    # the fit rejects tip-change curves (2 of 16 here) and should keep the others
+    assert np.all(~accepted[np.asarray(rec["tip_change"])])
+    assert accepted.sum() >= 12
+    # uncertainties small enough for the 3-sigma check to mean something: the barrier patch
+    # step (0.4-0.5 eV) is > 10 sigma
+    assert np.all((sigma[accepted] > 1e-3) & (sigma[accepted] < 0.04))
+    within = np.abs(phi_fit - phi_true) <= 3.0 * sigma
+    assert (within & accepted).sum() >= 12
+    # the map shows the patch: right-hand columns lower by |step|
+    right = np.asarray(rec["position_x_m"]) > rec["grid_center_x_m"]
+    d = (np.nanmedian(np.where(accepted & right, phi_fit, np.nan))
+         - np.nanmedian(np.where(accepted & ~right, phi_fit, np.nan)))
+    assert d == pytest.approx(step, abs=0.05)
+
+
 @pytest.mark.parametrize(
     ("changes", "match"),
     [({"formats": ("tif",)}, "formats = \\('tif',\\); need >= 1 value"),
@@ -209,7 +307,12 @@ def _same_attrs(new, old, skip) -> bool:
      ({"nx": 4}, "nx = 4; at least 8 pixels"),
      ({"window_moves": ((9, 1e-9, 0.0),)}, "frame indices must be in 0..2"),
      ({"phi_eV": -1.0}, "phi_eV = -1.0; must be a positive finite number"),
-     ({"start_time": "tonight"}, "is not an ISO 8601 time")])
+     ({"start_time": "tonight"}, "is not an ISO 8601 time"),
+     ({"curve_grid_shape": (1, 4)}, "curve_grid_shape = \\(1, 4\\); expected \\(nx, ny\\)"),
+     ({"curve_grid_files": 1, "curve_grid_pitch_m": 4e-9},
+      "curve_grid_pitch_m = 4e-09; the grid \\(4 nodes"),
+     ({"curve_grid_phi_step_eV": -4.3}, "phi_eV \\+ step = 0.3 eV; must be finite and > 0.5"),
+     ({"curve_grid_files": -1}, "curve_grid_files = -1; must be >= 0")])
 def test_bad_run_specs_raise(changes, match):
     with pytest.raises(IsogapError, match=match):
         preset("tiny").replace(**changes)

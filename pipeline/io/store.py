@@ -296,11 +296,13 @@ def write_store(
     failures: Sequence[Failure] = (),
     title: str = "isogap run",
     history: str = "",
+    extra_groups: Iterable[tuple[str, xr.Dataset]] = (),
 ) -> Path:
     """Build the store under a temporary name through one open handle, then replace atomically.
 
     ``frames`` may be a lazy iterable (e.g. reading staged files one at a time), so memory stays
-    at one frame. Frame groups are named after their sanitised ``frame_id``.
+    at one frame. Frame groups are named after their sanitised ``frame_id``. ``extra_groups``
+    are further ``(group path, dataset)`` pairs, e.g. ``("maps/grid1", ds)``.
     """
     path = Path(path)
     tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
@@ -323,6 +325,11 @@ def write_store(
                 seen.add(fid)
                 _dump_group(handle, f"frames/{fid}", ds)
             _dump_group(handle, "run", run)
+            for name, ds in extra_groups:
+                parts = [sanitize_id(p) for p in name.split("/")]
+                if len(parts) > 1 and parts[0] not in handle.groups:
+                    handle.create_group(parts[0])
+                _dump_group(handle, "/".join(parts), ds)
             _dump_group(handle, "failures", _failures_dataset(failures))
         os.replace(tmp, path)
     except BaseException:
@@ -348,6 +355,8 @@ class Store:
                 frames = handle.groups.get("frames")
                 self.frame_ids: list[str] = sorted(frames.groups) if frames is not None else []
                 self.groups = list(handle.groups)
+                maps = handle.groups.get("maps")
+                self.map_ids: list[str] = sorted(maps.groups) if maps is not None else []
         except OSError as exc:
             raise StoreError(f"store {self.path}: not a readable HDF5 store ({exc})") from None
         if "frames" not in self.groups or "run" not in self.groups:
@@ -368,6 +377,12 @@ class Store:
         """All frames, one at a time."""
         for fid in self.frame_ids:
             yield self.frame(fid)
+
+    def barrier_map(self, map_id: str) -> xr.Dataset:
+        """An apparent-barrier map (from approach curves recorded on a grid)."""
+        if map_id not in self.map_ids:
+            raise StoreError(f"store {self.path}: no map {map_id!r}")
+        return self._group(f"maps/{map_id}")
 
     def run(self) -> xr.Dataset:
         """The run group: work function, drift, config and their tables."""

@@ -20,7 +20,7 @@ import xarray as xr
 from pipeline import physics
 from pipeline.errors import ConfigError
 from pipeline.model import parse_time
-from pipeline.simulate.curves import simulate_approach_curves
+from pipeline.simulate.curves import grid_positions, simulate_approach_curves
 from pipeline.simulate.frames import (
     simulate_constant_current_frame,
     simulate_constant_height_frame,
@@ -59,12 +59,14 @@ class RunSpec:
 
     The schedule: ``n_constant_current`` frames of the main series (``nx × ny`` pixels,
     ``scan_size_m`` square), with ``n_constant_height`` constant-height frames, ``n_atomic``
-    small atomically resolved constant-current frames and ``n_curve_files`` approach-curve files
-    inserted at evenly spaced places; files follow one another with a gap of
+    small atomically resolved constant-current frames, ``n_curve_files`` approach-curve files and
+    ``curve_grid_files`` files of curves on a grid of positions inserted at evenly spaced places;
+    files follow one another with a gap of
     ``gap_between_files_s`` (± ``gap_jitter_fraction``). The main series' window starts at the
     origin and moves by ``(dx, dy)`` before main frame ``k`` for each ``(k, dx, dy)`` in
     ``window_moves``; the other frames and the curves sit inside the current window (the
-    constant-height and atomic frames on its flattest spot). The drift is constant.
+    constant-height and atomic frames and the curve grids on its flattest spot). The drift is
+    constant.
 
     Notes on some fields (the others are named after the frame-simulator arguments):
 
@@ -85,6 +87,13 @@ class RunSpec:
     - ``dtype``: dtype of the frame channels (curves are float64).
     - ``curve_*``: passed to :func:`~pipeline.simulate.curves.simulate_approach_curves`
       (exponential model, so the apparent barrier equals ``phi_eV``).
+    - ``curve_grid_*``: each grid file holds one curve per node of a ``curve_grid_shape =
+      (nx, ny)`` grid (``nx`` columns along x, ``ny`` rows along y, ``curve_grid_pitch_m``
+      apart, row by row as :func:`~pipeline.simulate.curves.grid_positions`), centred on a flat
+      spot of the window; the other ``curve_*`` settings apply (samples, bias, setpoint,
+      tip-change and contact fractions, formats). Nodes right of the grid centre (x offset
+      > 0) see the barrier ``phi_eV + curve_grid_phi_step_eV``: an invented patch of another
+      barrier height that only the grid curves see (the frames keep ``phi_eV``).
     """
 
     name: str = "run"
@@ -151,6 +160,11 @@ class RunSpec:
     curve_tip_change_fraction: float = 0.0
     curve_time_s: float = 1.5
     curve_z_range_m: tuple[float, float] = (-0.2e-9, 0.5e-9)
+    # --- approach curves on a grid of positions (a map of the apparent barrier)
+    curve_grid_files: int = 0
+    curve_grid_shape: tuple[int, int] = (4, 4)
+    curve_grid_pitch_m: float = 1.0e-9
+    curve_grid_phi_step_eV: float = 0.0
     # --- timing and drift
     gap_between_files_s: float = 15.0
     gap_jitter_fraction: float = 0.2
@@ -168,6 +182,8 @@ class RunSpec:
                      "drift_velocity_m_per_s", "curve_z_range_m", "formats",
                      "constant_height_formats", "atomic_formats", "curve_formats"):
             object.__setattr__(self, name, tuple(getattr(self, name)))
+        object.__setattr__(self, "curve_grid_shape",
+                           tuple(int(v) for v in self.curve_grid_shape))
         object.__setattr__(self, "window_moves",
                            tuple((int(k), float(dx), float(dy))
                                  for k, dx, dy in self.window_moves))
@@ -179,7 +195,8 @@ class RunSpec:
                                f"{allowed}")
 
         for key in ("n_constant_current", "n_constant_height", "n_atomic", "n_curve_files",
-                    "terrace_width_m", "n_adsorbates", "scars_per_frame", "z_in_volts_every"):
+                    "curve_grid_files", "terrace_width_m", "n_adsorbates", "scars_per_frame",
+                    "z_in_volts_every"):
             if getattr(self, key) < 0:
                 raise bad(key, "must be >= 0")
         if self.n_constant_current + self.n_constant_height + self.n_atomic < 1:
@@ -190,12 +207,24 @@ class RunSpec:
         for key in ("scan_size_m", "atomic_scan_size_m", "constant_height_scan_size_m",
                     "line_time_s", "atomic_line_time_s", "constant_height_line_time_s",
                     "phi_eV", "lattice_constant_m", "tip_height_m", "reference_current_A",
-                    "piezo_z_m_per_V", "curve_setpoint_A", "curve_time_s", "current_limit_A"):
+                    "piezo_z_m_per_V", "curve_setpoint_A", "curve_time_s", "current_limit_A",
+                    "curve_grid_pitch_m"):
             v = getattr(self, key)
             if not (isinstance(v, int | float) and math.isfinite(v) and v > 0):
                 raise bad(key, "must be a positive finite number")
         if self.curves_per_file < 1 or self.curve_samples < 5:
             raise bad("curves_per_file", "need >= 1 curve per file and >= 5 samples per curve")
+        if len(self.curve_grid_shape) != 2 or min(self.curve_grid_shape) < 2:
+            raise bad("curve_grid_shape", "expected (nx, ny) with at least 2 nodes along each axis")
+        if (self.curve_grid_files > 0
+                and max(self.curve_grid_shape) * self.curve_grid_pitch_m > self.scan_size_m):
+            raise bad("curve_grid_pitch_m",
+                      f"the grid ({max(self.curve_grid_shape)} nodes of this pitch) must fit in "
+                      f"the {self.scan_size_m:g} m window")
+        grid_phi = self.phi_eV + self.curve_grid_phi_step_eV
+        if not (math.isfinite(self.curve_grid_phi_step_eV) and grid_phi > 0.5):
+            raise bad("curve_grid_phi_step_eV",
+                      f"phi_eV + step = {grid_phi:g} eV; must be finite and > 0.5 eV")
         if self.backward_every < 0:
             raise bad("backward_every", "must be >= 0 (0: no backward traces)")
         if not self.bias_V or not self.setpoint_A or not self.constant_height_bias_V:
@@ -248,7 +277,8 @@ PRESETS: dict[str, RunSpec] = {
         description=(
             "Au(111)-like crystal, 25 nm frames with terraces, atoms and adsorbates; "
             "one 5 nm atomically resolved frame, two 4 nm constant-height frames, two files "
-            "of 8 approach curves; drift about 0.5 nm/min"),
+            "of 8 approach curves, one 4 x 4 grid of approach curves (1 nm pitch) over a patch "
+            "of 0.5 eV lower barrier; drift about 0.5 nm/min"),
         start_time="2026-03-14T22:10:00",
         n_constant_current=8, nx=128, ny=128, scan_size_m=25e-9, line_time_s=0.25,
         n_atomic=1, atomic_nx=96, atomic_scan_size_m=5e-9, atomic_line_time_s=0.1,
@@ -256,6 +286,8 @@ PRESETS: dict[str, RunSpec] = {
         constant_height_bias_V=(0.1, -0.1),
         n_curve_files=2, curves_per_file=8, curve_samples=200,
         curve_contact_fraction=0.0, curve_tip_change_fraction=0.125,
+        curve_grid_files=1, curve_grid_shape=(4, 4), curve_grid_pitch_m=1e-9,
+        curve_grid_phi_step_eV=-0.5,
         bias_V=(0.5, 0.5, 0.5, 0.5, 0.5, 0.5, -0.5, 0.5), setpoint_A=(1e-10,),
         tip_change_frames=(5,), z_in_volts_every=3, backward_every=8,
         window_moves=((4, 4e-9, 2.5e-9),),
@@ -305,7 +337,7 @@ def preset(name: str) -> RunSpec:
 
 @dataclass
 class _Item:
-    kind: str  # "constant-current" | "constant-height" | "atomic" | "curves"
+    kind: str  # "constant-current" | "constant-height" | "atomic" | "curves" | "curve-grid"
     index: int  # index within its kind
     key: float  # position in the schedule
     start: datetime | None = None
@@ -324,6 +356,8 @@ def _schedule(spec: RunSpec) -> list[_Item]:
               for j in range(spec.n_atomic)]
     items += [_Item("curves", j, j * span / max(spec.n_curve_files, 1) - 0.5)
               for j in range(spec.n_curve_files)]
+    items += [_Item("curve-grid", j, (j + 1) * span / (spec.curve_grid_files + 1) + 0.2)
+              for j in range(spec.curve_grid_files)]
     return sorted(items, key=lambda it: it.key)
 
 
@@ -334,6 +368,8 @@ def _duration_s(spec: RunSpec, item: _Item) -> float:
         return spec.atomic_nx * spec.atomic_line_time_s
     if item.kind == "constant-height":
         return spec.constant_height_nx * spec.constant_height_line_time_s
+    if item.kind == "curve-grid":
+        return math.prod(spec.curve_grid_shape) * spec.curve_time_s
     return spec.curves_per_file * spec.curve_time_s
 
 
@@ -362,7 +398,8 @@ def _flattest_centre(surface: Surface, rng: np.random.Generator, *, window: tupl
 
 def _frame_format(spec: RunSpec, it: _Item) -> str:
     fmts = {"constant-current": spec.formats, "constant-height": spec.constant_height_formats,
-            "atomic": spec.atomic_formats, "curves": spec.curve_formats}[it.kind]
+            "atomic": spec.atomic_formats, "curves": spec.curve_formats,
+            "curve-grid": spec.curve_formats}[it.kind]
     return fmts[it.index % len(fmts)]
 
 
@@ -384,13 +421,16 @@ def simulate_run(spec: RunSpec, *, seed: int | None = None
     -------
     files : list of SimulatedFile
         ``(name, dataset, format)`` in time order: data files named ``frame_NNN.<ext>`` /
-        ``curves_NNN.<ext>`` (``NNN`` a shared sequence number), each followed by its truth
-        ``truth/<id>.nc`` (format ``"truth"``; for curves a small dataset of per-curve truth).
+        ``curves_NNN.<ext>`` (``NNN`` a shared sequence number), each frame followed by its
+        truth ``truth/<id>.nc`` (format ``"truth"``); the per-curve truth of curve files is in
+        their record of ``truth["curves"]``.
     truth : dict
         Run-level truth: barrier (``phi_eV``, ``two_kappa_per_m``), drift (m/s and nm/min),
         crystal (``lattice_constant_m``, ``step_height_m``, ``surface_lattice_m``), tilt, the
         surface's steps and adsorbates, and one record per frame and per curve file (file,
-        times, centre, size, mode, bias, ...).
+        times, centre, size, mode, bias, ...; curve files: positions and the true ``phi_eV``
+        per curve, grid files also ``on_grid``, ``grid_nx``, ``grid_ny``, ``grid_pitch_m``,
+        ``grid_center_x_m``/``_y_m`` and ``grid_phi_step_eV``).
 
     Notes
     -----
@@ -445,15 +485,21 @@ def simulate_run(spec: RunSpec, *, seed: int | None = None
 
     # ---- sub-frame positions (constant height, atomic, curves) inside the current window
     curve_pos: dict[int, np.ndarray] = {}
+    grid_nx, grid_ny = spec.curve_grid_shape
+    sizes = {"constant-height": spec.constant_height_scan_size_m,
+             "atomic": spec.atomic_scan_size_m,
+             "curve-grid": max(grid_nx, grid_ny) * spec.curve_grid_pitch_m}
     for n, it in enumerate(items):
-        if it.kind in ("constant-height", "atomic"):
-            size = (spec.constant_height_scan_size_m if it.kind == "constant-height"
-                    else spec.atomic_scan_size_m)
+        if it.kind in sizes:
+            size = sizes[it.kind]
             assert it.start is not None
             t_mid = (it.start - t0).total_seconds() + 0.5 * it.duration_s
             it.center = _flattest_centre(surface, pos_rng, window=it.window,
                                          window_size=spec.scan_size_m, size=size,
                                          shift=(vx * t_mid, vy * t_mid))
+            if it.kind == "curve-grid":
+                curve_pos[n] = np.asarray(it.center) + np.asarray(
+                    grid_positions(grid_nx, grid_ny, spec.curve_grid_pitch_m))
         elif it.kind == "curves":
             half = 0.3 * spec.scan_size_m
             curve_pos[n] = np.asarray(it.window) + pos_rng.uniform(
@@ -465,7 +511,7 @@ def simulate_run(spec: RunSpec, *, seed: int | None = None
     for n, it in enumerate(items):
         rng = np.random.default_rng(item_seeds[n])
         assert it.start is not None
-        if it.kind == "curves":
+        if it.kind in ("curves", "curve-grid"):
             entry, rec = _render_curves(spec, it, n, rng, curve_pos[n], t0)
             files.extend(entry)
             curve_records.append(rec)
@@ -603,8 +649,20 @@ def _render_curves(spec: RunSpec, it: _Item, n: int, rng: np.random.Generator,
     set_id = f"curves_{n:03d}"
     fmt = _frame_format(spec, it)
     assert it.start is not None
+    n_curves = positions.shape[0]
+    grid: dict[str, Any] = {}
+    phi: float | np.ndarray = spec.phi_eV
+    if it.kind == "curve-grid":
+        # the invented patch: nodes right of the grid centre see phi_eV + step
+        right = positions[:, 0] > it.center[0] + 1e-3 * spec.curve_grid_pitch_m
+        phi = np.where(right, spec.phi_eV + spec.curve_grid_phi_step_eV, spec.phi_eV)
+        grid = {"on_grid": True, "grid_nx": spec.curve_grid_shape[0],
+                "grid_ny": spec.curve_grid_shape[1], "grid_pitch_m": spec.curve_grid_pitch_m,
+                "grid_center_x_m": float(it.center[0]), "grid_center_y_m": float(it.center[1]),
+                "grid_phi_step_eV": spec.curve_grid_phi_step_eV,
+                "grid_patch": "nodes with x > grid_center_x_m have phi_eV + grid_phi_step_eV"}
     ds, ctruth = simulate_approach_curves(
-        rng, n_curves=spec.curves_per_file, phi_eV=spec.phi_eV,
+        rng, n_curves=n_curves, phi_eV=phi,
         phi_spread_eV=spec.curve_phi_spread_eV, bias_V=spec.curve_bias_V,
         start_time=it.start.isoformat(), setpoint_current_A=spec.curve_setpoint_A,
         z_range_m=spec.curve_z_range_m,
@@ -616,10 +674,11 @@ def _render_curves(spec: RunSpec, it: _Item, n: int, rng: np.random.Generator,
     rec: dict[str, Any] = {
         "curve_set_id": set_id, "file": f"{set_id}.{fmt}", "format": fmt,
         "start_time": it.start.isoformat(), "time_offset_s": t_off,
-        "n_curves": spec.curves_per_file, "bias_V": float(spec.curve_bias_V),
+        "n_curves": n_curves, "bias_V": float(spec.curve_bias_V),
         "setpoint_A": float(ds.attrs["setpoint_A"]),
         "position_x_m": [float(v) for v in positions[:, 0]],
         "position_y_m": [float(v) for v in positions[:, 1]],
+        **grid,
     }
     for key, value in ctruth.items():
         arr = np.asarray(value)
