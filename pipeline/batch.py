@@ -46,6 +46,7 @@ from pipeline.io.store import (
     read_staged,
     staged_attrs,
     staged_frames,
+    staged_header,
     staging_dir,
     write_store,
 )
@@ -57,7 +58,14 @@ from pipeline.stages.barrier import (
     two_setpoint_work_function,
 )
 from pipeline.stages.calibrate import z_scale_from_steps
-from pipeline.stages.drift import drift_table, fit_drift_model
+from pipeline.stages.drift import (
+    DriftModel,
+    drift_table,
+    fit_drift_series,
+    fit_z_drift,
+    frame_times_s,
+    plan_frame_pairs,
+)
 
 __all__ = ["Event", "RunSummary", "make_executor", "own_files", "run_batch"]
 
@@ -450,8 +458,9 @@ def _run(
     extra = {"work_function_eV": phi}
     finals: list[str] = []
     summary.frames = []
-    jobs = [(staged_paths[f], str(store), drift_model if config.drift.correct_within_frames
-             else None, run_t0, z_scale, z_unc, extra) for f in order]
+    jobs = [(staged_paths[f], str(store), config, drift_model
+             if config.drift.correct_within_frames else None, run_t0, z_scale, z_unc, extra)
+            for f in order]
     for res in _pass(executor, "finishing", _finalize, jobs, emit):
         if res.failure:
             fail(res.failure)
@@ -479,33 +488,48 @@ def _run(
     emit(Event("advance", name="writing store"))
 
 
-def _finalize(staged: str, store: str, drift_model: Any, run_t0: str, z_scale: float,
-              z_unc: float, extra: dict[str, Any]) -> tasks.FrameSummary:
-    return tasks.finalize_frame(staged, store, drift_model=drift_model, run_t0=run_t0,
+def _finalize(staged: str, store: str, config: Config, drift_model: Any, run_t0: str,
+              z_scale: float, z_unc: float, extra: dict[str, Any]) -> tasks.FrameSummary:
+    return tasks.finalize_frame(staged, store, config=config, drift_model=drift_model,
+                                run_t0=run_t0,
                                 z_scale=z_scale, z_scale_uncertainty=z_unc, extra_attrs=extra)
 
 
 def _drift(
     executor: Any, order: list[str], staged: dict[str, str], run_t0: str, config: Config,
     emit: Callable[[Event], None],
-) -> tuple[Any, xr.Dataset | None]:
-    pairs = [(staged[a], staged[b], config) for a, b in itertools.pairwise(order)]
-    emit(Event("pass", name="drift", total=len(pairs)))
-    shifts: list[dict[str, Any]] = [{}] * len(pairs)
-    for i, res in executor.map_unordered(tasks.register_pair, pairs):
-        shifts[i] = res
+) -> tuple[DriftModel | None, xr.Dataset | None]:
+    """Register compatible frame pairs (in parallel) and fit the run's drift model."""
+    d = config.drift
+    headers = [staged_header(staged[f]) for f in order]
+    frames = [{**a, "nx": n["x"], "ny": n["y"]} for a, n in headers]
+    # shape-only stand-ins carry what the frame clock needs (sizes + attrs), not the maps
+    stand_ins = [xr.Dataset(coords={"y": np.zeros(n["y"]), "x": np.zeros(n["x"])}, attrs=a)
+                 for a, n in headers]
+    times = np.array([frame_times_s(ds, run_start=run_t0)[1] for ds in stand_ins])
+    pairs = plan_frame_pairs(frames)
+    if not pairs:
+        emit(Event("warning", message="drift not measured: no two frames of the same area and "
+                   "pixel size"))
+        return None, None
+    jobs = [(staged[order[i]], staged[order[j]], config) for i, j in pairs]
+    emit(Event("pass", name="drift", total=len(jobs)))
+    shifts: list[Any] = [None] * len(jobs)
+    for k, res in executor.map_unordered(tasks.register_pair, jobs):
+        shifts[k] = res
         emit(Event("advance", name="drift"))
-    t0 = parse_time(run_t0)
-    times = [(parse_time(staged_attrs(staged[f])["start_time"]) - t0).total_seconds()
-             for f in order]
     try:
-        model = fit_drift_model(
-            np.asarray(times),
-            np.array([s["dx_m"] for s in shifts]), np.array([s["dy_m"] for s in shifts]),
-            uncertainties_m=np.array([s.get("uncertainty_m", np.nan) for s in shifts]),
-            confidence=np.array([s.get("confidence", 0.0) for s in shifts]),
-            min_confidence=config.drift.min_confidence, model=config.drift.model)
+        model = fit_drift_series(times, shifts, frame_ids=order, min_confidence=d.min_confidence,
+                                 model=d.model, smooth_degree=d.smooth_degree,
+                                 outlier_threshold_sigma=d.outlier_threshold_sigma)
     except IsogapError as exc:
         emit(Event("warning", message=f"drift not corrected: {exc}"))
         return None, None
-    return model, drift_table(model)
+    for w in model.warnings:
+        emit(Event("warning", message=f"drift: {w}"))
+    means = np.array([float(a.get("mean_height_before_levelling_m", np.nan)) for a, _ in headers])
+    z_drift = fit_z_drift(times, means) if np.isfinite(means).sum() >= 3 else None
+    starts = np.array([frame_times_s(ds, run_start=run_t0)[0] for ds in stand_ins])
+    table = drift_table(order, times, shifts, model, frame_start_s=starts,
+                        mean_heights_m=means, z_drift=z_drift, run_start=run_t0)
+    return (model if model.is_usable else None), table

@@ -14,6 +14,7 @@ from typing import Annotated, Any
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 from rich.table import Table
 
 from pipeline.errors import IsogapError, ProcessingError
@@ -46,7 +47,7 @@ VerboseOpt = Annotated[int, typer.Option("--verbose", "-v", count=True,
 
 
 def _fail(message: str, code: int = 2) -> typer.Exit:
-    err.print(f"[bold red]error:[/] {message}", highlight=False, markup=True, soft_wrap=True)
+    err.print(f"[bold red]error:[/] {escape(message)}", highlight=False, soft_wrap=True)
     return typer.Exit(code)
 
 
@@ -169,11 +170,12 @@ class _Progress:
     def event(self, ev: Any) -> None:
         if ev.kind == "failure":
             (self._bar.console if self._bar else err).print(
-                f"[red]failed:[/] {ev.message}", highlight=False, soft_wrap=True)
+                f"[red]failed:[/] {escape(ev.message)}", highlight=False, soft_wrap=True)
         elif ev.kind == "warning":
             if not self.quiet:
                 (self._bar.console if self._bar else err).print(
-                    f"[yellow]warning:[/] {ev.message}", highlight=False, soft_wrap=True)
+                    f"[yellow]warning:[/] {escape(ev.message)}", highlight=False,
+                    soft_wrap=True)
         elif ev.kind == "pass":
             if self._bar is not None:
                 self._tasks[ev.name] = self._bar.add_task(ev.name, total=ev.total or None)
@@ -235,20 +237,23 @@ def show(store: Annotated[Path, typer.Argument(help="an isogap store")]) -> None
         run = st.run()
         failures = st.failures()
         t = Table(title=f"{store} — {st.attrs.get('title', '')}")
-        for col, just in (("frame", "left"), ("mode", "left"), ("start", "left"),
+        for col, just in (("frame", "left"), ("mode", "left"), ("start time", "left"),
                           ("status", "left"), ("step / pm", "right"), ("Sq / pm", "right"),
                           ("warnings", "right")):
             t.add_column(col, justify=just)  # type: ignore[arg-type]
         for fid in st.frame_ids:
             a = st.frame(fid).attrs
             status = str(a.get("status", "?"))
-            t.add_row(fid, str(a.get("mode", "")), str(a.get("start_time", "")),
+            mode = {"constant-current": "CC", "constant-height": "CH"}.get(
+                str(a.get("mode", "")), "?")
+            t.add_row(fid, mode, str(a.get("start_time", "")).replace("T", " ")[:19],
                       status if status == "ok" else f"[yellow]{status}[/]",
                       _fmt_pm(a.get("step_height_m")), _fmt_pm(a.get("Sq_m")),
                       str(len(get_warnings(st.frame(fid)))))
     except IsogapError as exc:
         raise _fail(str(exc)) from None
     out.print(t)
+    out.print("mode: CC = constant current, CH = constant height", style="dim")
     ra = run.attrs
     out.print(f"work function: {float(ra.get('work_function_eV', float('nan'))):.3f} ± "
               f"{float(ra.get('work_function_uncertainty_eV', float('nan'))):.3f} eV "
@@ -260,7 +265,8 @@ def show(store: Annotated[Path, typer.Argument(help="an isogap store")]) -> None
     if failures:
         out.print(f"[red]{len(failures)} failed input(s):[/]")
         for f in failures:
-            out.print(f"  {f.file} [{f.stage}]: {f.message}", highlight=False, soft_wrap=True)
+            out.print(escape(f"  {f.file} ({f.stage}): {f.message}"), highlight=False,
+                      soft_wrap=True)
 
 
 @app.command()

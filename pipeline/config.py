@@ -175,9 +175,9 @@ class DriftConfig(_Section):
     interpolation_order: Literal[1, 3] = Field(
         1, description="interpolation of the corrected frames: 1 (linear) or 3 (cubic spline)")
     correction_reference: Literal["run-start", "frame-mid"] = Field(
-        "run-start", description="run-start: corrected frames show the surface as at the run "
-        "start (the whole frame moves by the drift since then); frame-mid: only the drift "
-        "within each frame is undone")
+        "frame-mid", description="frame-mid: undo the drift within each frame (its absolute "
+        "displacement is recorded); run-start: also move every frame back to the run start "
+        "(after hours of drift most of a frame then lies outside its own grid)")
 
 
 class CalibrateConfig(_Section):

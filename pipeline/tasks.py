@@ -24,7 +24,7 @@ from pipeline.io.store import Failure, read_staged, write_staged
 from pipeline.model import BAD_PIXELS, get_warnings, parse_time
 from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, apparent_barrier_map, fit_curves
 from pipeline.stages.calibrate import scale_height
-from pipeline.stages.drift import DriftModel, correct_drift, measure_frame_shift
+from pipeline.stages.drift import DriftModel, FrameShift, correct_drift, measure_frame_shift
 from pipeline.stages.height import reconstruct_height
 from pipeline.stages.level import level_lines, level_terraces, repair_scars, subtract_background
 from pipeline.stages.quality import assess_quality, flag_tip_changes
@@ -145,6 +145,7 @@ def process_frame(
             combine_traces=h.combine_traces, trace_mismatch_sigma=h.trace_mismatch_sigma,
             noise_floor_A=h.noise_floor_A, current_noise_A=h.current_noise_A)
         del raw
+        ds.attrs["mean_height_before_levelling_m"] = _valid_mean(ds)
         # before levelling: line levelling would remove the jumps that mark a tip change
         stage = "flag_tip_changes"
         ds = flag_tip_changes(ds, threshold_sigma=q.tip_change_threshold_sigma)
@@ -183,29 +184,32 @@ def process_frame(
     return out
 
 
+def _valid_mean(ds: xr.Dataset) -> float:
+    good = (ds["flags"].values & int(BAD_PIXELS)) == 0
+    hv = ds["height"].values
+    vals = hv[good & np.isfinite(hv)]
+    return float(vals.mean()) if vals.size else float("nan")
+
+
 def _summarise(ds: xr.Dataset, out: FrameSummary) -> None:
     out.frame_id = str(ds.attrs["frame_id"])
     out.status = str(ds.attrs.get("status", "ok"))
     out.start_time = str(ds.attrs["start_time"])
-    good = (ds["flags"].values & int(BAD_PIXELS)) == 0
-    hv = ds["height"].values
-    vals = hv[good & np.isfinite(hv)]
-    out.mean_height_m = float(vals.mean()) if vals.size else float("nan")
+    out.mean_height_m = _valid_mean(ds)
     if "step_height_m" in ds.attrs:
         out.step_height_m = float(ds.attrs["step_height_m"])
         out.step_height_uncertainty_m = float(ds.attrs.get("step_height_uncertainty_m", np.nan))
     out.n_warnings = len(get_warnings(ds))
 
 
-def register_pair(previous: str, current: str, config: Config) -> dict[str, Any]:
+def register_pair(previous: str, current: str, config: Config) -> FrameShift:
     """Measure the drift shift between two staged, levelled frames."""
     a, b = read_staged(previous), read_staged(current)
-    shift = measure_frame_shift(a, b, upsample_factor=config.drift.upsample_factor)
-    return dict(shift if isinstance(shift, dict) else shift.__dict__)
+    return measure_frame_shift(a, b, upsample_factor=config.drift.upsample_factor)
 
 
 def finalize_frame(
-    staged: str, store: str, *, drift_model: DriftModel | None, run_t0: str,
+    staged: str, store: str, *, config: Config, drift_model: DriftModel | None, run_t0: str,
     z_scale: float, z_scale_uncertainty: float, extra_attrs: dict[str, Any],
 ) -> FrameSummary:
     """Run-level corrections of one staged frame: drift inside the frame, then the z scale."""
@@ -214,8 +218,10 @@ def finalize_frame(
     stage = "correct_drift"
     try:
         if drift_model is not None:
+            d = config.drift
             t0 = (parse_time(ds.attrs["start_time"]) - parse_time(run_t0)).total_seconds()
-            ds = correct_drift(ds, model=drift_model, frame_t0_s=t0)
+            ds = correct_drift(ds, model=drift_model, frame_t0_s=t0,
+                               order=d.interpolation_order, reference=d.correction_reference)
         if z_scale != 1.0:
             stage = "scale_height"
             ds = scale_height(ds, factor=z_scale, factor_uncertainty=z_scale_uncertainty)

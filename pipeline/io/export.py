@@ -243,6 +243,13 @@ def export_frames(
     so a lateral calibration is carried along. TIFF resolution tags are rationals in pixels
     per centimetre (accurate to about 1e-9 relative); the exact pixel size in metres is in the
     JSON description.
+
+    References
+    ----------
+    .. [1] IEEE Std 754-2019, Standard for Floating-Point Arithmetic, §5.12.2 (9 significant
+       decimal digits recover every binary32 value).
+    .. [2] TIFF Revision 6.0 (Adobe, 1992): XResolution/YResolution, ResolutionUnit 3 =
+       centimetre.
     """
     if fmt not in EXPORT_FORMATS:
         raise ExportError(f"export format {fmt!r} is not known; expected one of "

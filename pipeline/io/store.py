@@ -48,6 +48,7 @@ __all__ = [
     "read_staged",
     "staged_attrs",
     "staged_frames",
+    "staged_header",
     "staging_dir",
     "write_staged",
     "write_store",
@@ -251,12 +252,19 @@ def read_staged(path: str | os.PathLike[str]) -> xr.Dataset:
 
 def staged_attrs(path: str | os.PathLike[str]) -> dict[str, Any]:
     """The global attributes of a staged result, without reading its arrays."""
+    return staged_header(path)[0]
+
+
+def staged_header(path: str | os.PathLike[str]) -> tuple[dict[str, Any], dict[str, int]]:
+    """Global attributes and dimension sizes of a staged result, without reading its arrays."""
     try:
         with h5netcdf.File(path, "r") as handle:
-            return {k: (v.decode() if isinstance(v, bytes) else v)
-                    for k, v in handle.attrs.items()}
+            attrs = {k: (v.decode() if isinstance(v, bytes) else v)
+                     for k, v in handle.attrs.items()}
+            sizes = {str(k): int(v.size) for k, v in handle.dimensions.items()}
     except (OSError, ValueError) as exc:
         raise StoreError(f"staged result {path} is unreadable ({exc})") from None
+    return attrs, sizes
 
 
 def staged_frames(store: str | os.PathLike[str], kind: str = "frames") -> dict[str, Path]:

@@ -12,6 +12,7 @@ import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 import xarray as xr
@@ -32,13 +33,16 @@ from pipeline.model import BAD_PIXELS, frame_coords, get_warnings, parse_time
 __all__ = [
     "COLORMAP",
     "FLAGGED_COLOR",
+    "Profile",
     "ReportError",
+    "as_number",
     "display_scale",
     "format_bias",
     "format_current",
     "format_time",
     "format_uncertain",
     "frame_warnings",
+    "quicklook_figure",
     "render_quicklook",
     "render_thumbnail",
     "robust_limits",
@@ -51,6 +55,18 @@ COLORMAP = "viridis"
 
 #: Neutral colour of flagged pixels: a mid grey that viridis never takes.
 FLAGGED_COLOR = "#9a9a9a"
+
+#: The steepest feature must stand this many times above the median averaged gradient (for
+#: pure noise the averaged gradient's magnitude is Rayleigh distributed: max/median ≈ 2.6 over
+#: ~100 independent windows, so 4 is rarely reached by chance).
+DISTINCT_FEATURE_RATIO = 4.0
+
+#: Without a distinct maximum, the mean averaged gradient is used through the centre if it is at
+#: least this fraction of the mean magnitude (a staircase of many steps: one coherent slope).
+COHERENT_SLOPE_FRACTION = 0.5
+
+#: Width (inches) of the image in the quick-look figure; the figure is 6.4 inches wide.
+IMAGE_WIDTH_IN = 4.3
 
 #: Percentiles of the usable heights that set the colour limits.
 CONTRAST_PERCENTILES = (1.0, 99.0)
@@ -72,7 +88,7 @@ def display_scale(span_m: float) -> tuple[float, str]:
     return 1e9, "nm"
 
 
-def _number(value: object) -> float | None:
+def as_number(value: object) -> float | None:
     """A finite float from an attribute value (number, numpy scalar, text), or ``None``."""
     if value is None:
         return None
@@ -109,8 +125,14 @@ def format_uncertain(value: float | None, uncertainty: float | None, *, scale: f
     """``value ± uncertainty unit`` in display units, rounded to the uncertainty's precision.
 
     The uncertainty keeps two significant digits when its leading digit is 1 or 2, else one
-    (common practice for quoting a standard uncertainty); the value gets the same decimals.
-    Without an uncertainty the value is shown with ``digits`` significant digits.
+    (common practice for quoting a standard uncertainty; the GUM [1]_ asks for at most two);
+    the value gets the same decimals. Without an uncertainty the value is shown with ``digits``
+    significant digits.
+
+    References
+    ----------
+    .. [1] JCGM 100:2008, Evaluation of measurement data — Guide to the expression of
+       uncertainty in measurement, §7.2.6.
     """
     if value is None:
         return "—"
@@ -155,13 +177,13 @@ def _grid(ds: xr.Dataset) -> tuple[np.ndarray, np.ndarray]:
     ny, nx = ds["height"].shape
     if "x" in ds.coords and "y" in ds.coords:
         return np.asarray(ds["x"].values, float), np.asarray(ds["y"].values, float)
-    sx, sy = _number(ds.attrs.get("scan_size_x_m")), _number(ds.attrs.get("scan_size_y_m"))
+    sx, sy = as_number(ds.attrs.get("scan_size_x_m")), as_number(ds.attrs.get("scan_size_y_m"))
     if sx is None or sy is None:
         raise ReportError(
             f"frame {ds.attrs.get('frame_id', '?')}: no x/y coordinates and no "
             "scan_size_x_m/scan_size_y_m attributes, so the image has no length scale")
-    return frame_coords(nx, ny, sx, sy, _number(ds.attrs.get("scan_center_x_m")) or 0.0,
-                        _number(ds.attrs.get("scan_center_y_m")) or 0.0)
+    return frame_coords(nx, ny, sx, sy, as_number(ds.attrs.get("scan_center_x_m")) or 0.0,
+                        as_number(ds.attrs.get("scan_center_y_m")) or 0.0)
 
 
 def _prepare(ds: xr.Dataset, overlay_flags: int) -> _Frame:
@@ -203,9 +225,18 @@ def _edges(c: np.ndarray) -> tuple[float, float]:
     return float(c[0] - step / 2), float(c[-1] + step / 2)
 
 
+class Profile(NamedTuple):
+    """A straight line profile: sample coordinates (m), heights (m), and how it was chosen."""
+
+    x: np.ndarray
+    y: np.ndarray
+    height: np.ndarray
+    feature: bool  #: True if the line crosses a distinct feature, False for the centre line
+
+
 def steepest_profile(
     height: np.ndarray, x: np.ndarray, y: np.ndarray, *, valid: np.ndarray | None = None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+) -> Profile:
     """A straight line across the frame's steepest extended feature and the heights along it.
 
     Parameters
@@ -219,10 +250,10 @@ def steepest_profile(
 
     Returns
     -------
-    xs, ys : ndarray
-        Coordinates (m) of the sample points along the line, from one image edge to the other.
-    hs : ndarray
-        Heights (m) at those points, linearly interpolated; NaN where a neighbour is unusable.
+    Profile
+        ``x``, ``y``: coordinates (m) of the sample points along the line, from one image edge
+        to the other; ``height``: heights (m) there, linearly interpolated, NaN where a
+        neighbour is unusable; ``feature``: whether a distinct feature was found.
 
     Notes
     -----
@@ -231,7 +262,15 @@ def steepest_profile(
     Along a straight step the gradients point the same way and the average stays large; around a
     compact adsorbate they point in all directions and cancel. The line runs through the maximum
     of the averaged gradient, along its direction, so it crosses the largest step at right
-    angles. A frame without any gradient gets a horizontal line through its centre.
+    angles. Candidate points keep a margin of an eighth of the frame from its border. Without a
+    distinct maximum (less than :data:`DISTINCT_FEATURE_RATIO` times the median) the line runs
+    through the centre: along the mean averaged gradient if that is coherent (a staircase of
+    many steps), else horizontally (noise, a flat frame).
+
+    References
+    ----------
+    .. [1] H. Knutsson and C.-F. Westin, "Normalized and differential convolution", Proc. IEEE
+       CVPR 1993, 515–523, doi:10.1109/CVPR.1993.341081 (normalised convolution).
     """
     ny, nx = height.shape
     ok = np.isfinite(height) if valid is None else (valid & np.isfinite(height))
@@ -240,23 +279,34 @@ def steepest_profile(
     w = ok.astype(np.float64)
     point = ((nx - 1) / 2.0, (ny - 1) / 2.0)
     direction = np.array([1.0, 0.0])
+    found = False
     if ok.sum() >= 4 and nx >= 3 and ny >= 3:
         num = ndimage.gaussian_filter(np.where(ok, height, 0.0), 1.0, mode="nearest")
         den = ndimage.gaussian_filter(w, 1.0, mode="nearest")
         inside = den > 0.9
         smooth = np.divide(num, den, out=np.zeros_like(num), where=den > 1e-3)
         gy, gx = np.gradient(smooth, dy, dx)
-        both = inside & np.roll(inside, 1, 0) & np.roll(inside, -1, 0) \
-            & np.roll(inside, 1, 1) & np.roll(inside, -1, 1)
-        sigma = max(2.0, min(nx, ny) / 32.0)
+        # central differences need both neighbours usable (the image border is not a gap)
+        both = ndimage.binary_erosion(inside, ndimage.generate_binary_structure(2, 1),
+                                      border_value=1)
+        sigma = max(3.0, min(nx, ny) / 16.0)
         vx = ndimage.gaussian_filter(np.where(both, gx, 0.0), sigma, mode="constant")
         vy = ndimage.gaussian_filter(np.where(both, gy, 0.0), sigma, mode="constant")
         mag = np.hypot(vx, vy)
-        k = int(np.argmax(mag))
-        if mag.flat[k] > 0:
-            j, i = divmod(k, nx)
-            point = (float(i), float(j))
-            direction = np.array([vx.flat[k], vy.flat[k]]) / mag.flat[k]
+        # candidates away from the border, so the line is long and its context visible
+        mx, my = (min(int(max(sigma, n / 8)), (n - 1) // 2) for n in (nx, ny))
+        inner = mag[my:ny - my, mx:nx - mx]
+        k = int(np.argmax(inner))
+        j, i = divmod(k, inner.shape[1])
+        best, typical = float(inner.flat[k]), float(np.median(inner))
+        mean_v = np.array([vx[my:ny - my, mx:nx - mx].mean(), vy[my:ny - my, mx:nx - mx].mean()])
+        if best > 0 and best > DISTINCT_FEATURE_RATIO * typical:
+            point = (float(i + mx), float(j + my))
+            direction = np.array([vx[j + my, i + mx], vy[j + my, i + mx]]) / best
+            found = True
+        elif np.hypot(*mean_v) > COHERENT_SLOPE_FRACTION * float(inner.mean()) > 0:
+            direction = mean_v / np.hypot(*mean_v)  # many parallel steps: across them
+            found = True
     # line through the point (physical coordinates), clipped to the box of pixel centres
     px, py = x[0] + point[0] * dx, y[0] + point[1] * dy
     lo_x, hi_x = sorted((float(x[0]), float(x[-1])))
@@ -275,7 +325,7 @@ def steepest_profile(
     fi, fj = (xs - x[0]) / dx, (ys - y[0]) / dy
     hs = ndimage.map_coordinates(np.where(ok, height, np.nan), [fj, fi], order=1,
                                  mode="nearest", prefilter=False)
-    return xs, ys, hs
+    return Profile(xs, ys, hs, found)
 
 
 # --------------------------------------------------------------------------------------------
@@ -307,8 +357,11 @@ def _title(ds: xr.Dataset, frame_id: str) -> tuple[str, str]:
     parts = [f"started {format_time(a.get('start_time'))}"]
     if a.get("mode"):
         parts.append(str(a["mode"]))
-    parts.append(f"sample bias {format_bias(_number(a.get('bias_V')))}")
-    sp = _number(a.get("setpoint_A"))
+    angle = as_number(a.get("scan_angle_deg"))
+    if angle:
+        parts.append(f"scan rotated {angle:g}°")
+    parts.append(f"sample bias {format_bias(as_number(a.get('bias_V')))}")
+    sp = as_number(a.get("setpoint_A"))
     if sp is not None:
         parts.append(f"setpoint {format_current(sp)}")
     line1 = "  ·  ".join(parts[:2])
@@ -318,7 +371,6 @@ def _title(ds: xr.Dataset, frame_id: str) -> tuple[str, str]:
 def _save_figure(fig: Figure, path: Path, dpi: float) -> Path:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    FigureCanvasAgg(fig)
     fig.savefig(path, dpi=dpi, format="png", metadata={"Software": f"isogap {__version__}"})
     return path
 
@@ -345,7 +397,8 @@ def render_quicklook(
     path : path-like
         Output PNG file (its folder is created).
     dpi : float, optional
-        Resolution; the figure is 6.4 × 7.4 inches (≈ 700 × 810 pixels at the default).
+        Resolution. The figure is 6.4 inches wide (704 pixels at the default); its height
+        follows the scan's aspect ratio (7.4 inches for a square scan).
     overlay_flags : int, optional
         Flag bits shown as grey (default :data:`pipeline.model.BAD_PIXELS`); non-finite heights
         are always grey.
@@ -361,6 +414,21 @@ def render_quicklook(
     (:func:`robust_limits`), so one tall adsorbate does not wash out the terraces; values
     outside are shown in the end colours (the colour bar has arrow ends). The profile follows
     :func:`steepest_profile`; a fitted step height in the frame's attributes is quoted beside it.
+    The colour map is perceptually uniform (:data:`COLORMAP`), so equal height steps look like
+    equal colour steps and no false edges appear [1]_.
+
+    References
+    ----------
+    .. [1] F. Crameri, G. E. Shephard and P. J. Heron, "The misuse of colour in science
+       communication", Nat. Commun. 11, 5444 (2020), doi:10.1038/s41467-020-19160-7.
+    """
+    return _save_figure(quicklook_figure(ds, overlay_flags=overlay_flags), Path(path), dpi)
+
+
+def quicklook_figure(ds: xr.Dataset, *, overlay_flags: int = int(BAD_PIXELS)) -> Figure:
+    """The quick-look :class:`~matplotlib.figure.Figure` of :func:`render_quicklook` (unsaved).
+
+    Useful for embedding the figure elsewhere or inspecting it; the figure has an Agg canvas.
     """
     fr = _prepare(ds, overlay_flags)
     lo, hi = robust_limits(fr.height)
@@ -376,11 +444,22 @@ def render_quicklook(
     y0, y1 = _edges(fr.y * nm)
     width_nm, height_nm = abs(x1 - x0), abs(y1 - y0)
 
-    fig = Figure(figsize=(6.4, 7.4), layout="constrained")
-    gs = fig.add_gridspec(2, 1, height_ratios=[3.3, 1.0])
+    # the figure follows the scan's aspect: no empty band beside wide or tall scans
+    ratio = height_nm / width_nm
+    if ratio <= 1:
+        img_w, img_h, fig_w = IMAGE_WIDTH_IN, max(IMAGE_WIDTH_IN * ratio, 1.3), 6.4
+    else:
+        img_h = min(IMAGE_WIDTH_IN * ratio, 5.4)
+        img_w = img_h / ratio
+        fig_w = max(3.8, min(6.4, img_w + 2.2))
+    fig = Figure(figsize=(fig_w, img_h + 3.1), layout="constrained")
+    gs = fig.add_gridspec(2, 1, height_ratios=[img_h, 1.3])
     ax = fig.add_subplot(gs[0])
     axp = fig.add_subplot(gs[1])
     head, sub = _title(ds, fr.frame_id)
+    if fig_w < 5:
+        sub = sub.replace("  ·  sample bias", "\nsample bias").replace("  ·  setpoint",
+                                                                      "\nsetpoint")
     fig.suptitle(head, fontsize=11, fontweight="bold")
     ax.set_title(sub, fontsize=8.5, linespacing=1.4, pad=6)
 
@@ -392,9 +471,12 @@ def render_quicklook(
     ax.set_ylabel("y (nm)")
     ax.tick_params(labelsize=8)
     if n_usable:  # without usable pixels a colour scale would only mislead
-        cb = fig.colorbar(im, ax=ax, shrink=0.92, pad=0.02, extend="both")
+        # a colour bar that hugs the drawn image (also for tall scans in a wide slot)
+        cax = ax.inset_axes((1 + 0.1 / img_w, 0.0, 0.17 / img_w, 1.0))
+        cb = fig.colorbar(im, cax=cax, extend="both")
+        sign = "−" if offset > 0 else "+"
         label = f"height ({unit})" if offset == 0 else \
-            f"height − {offset * nm:.4g} nm ({unit})"
+            f"height {sign} {abs(offset) * nm:.4g} nm ({unit})"
         cb.set_label(label, fontsize=9)
         cb.ax.tick_params(labelsize=8)
 
@@ -407,11 +489,15 @@ def render_quicklook(
 
     n_flag = int(fr.flagged.sum())
     if n_flag:
-        ax.legend(handles=[Patch(facecolor=FLAGGED_COLOR, edgecolor="0.3", linewidth=0.5,
-                                 label=f"flagged, not used ({100 * n_flag / fr.flagged.size:.1f}"
-                                       " % of pixels)")],
-                  loc="upper left", fontsize=7.5, framealpha=0.85, borderpad=0.4,
-                  handlelength=1.2, handleheight=1.0)
+        handle = Patch(facecolor=FLAGGED_COLOR, edgecolor="0.3", linewidth=0.5,
+                       label=f"flagged, not used ({100 * n_flag / fr.flagged.size:.1f} % of "
+                             "pixels)")
+        style = {"fontsize": 7.5, "framealpha": 0.85, "borderpad": 0.4, "handlelength": 1.2,
+                 "handleheight": 1.0}
+        if img_w >= 2.8:
+            ax.legend(handles=[handle], loc="upper left", **style)
+        else:  # too narrow to hold the note: below the figure instead
+            fig.legend(handles=[handle], loc="outside lower center", **style)
 
     if n_usable == 0:
         ax.text(0.5, 0.5, "no usable pixels in this frame", transform=ax.transAxes,
@@ -422,7 +508,7 @@ def render_quicklook(
         axp.set_xticks([])
         axp.set_yticks([])
     else:
-        xs, ys, hs = steepest_profile(fr.height, fr.x, fr.y, valid=usable)
+        xs, ys, hs, feature = steepest_profile(fr.height, fr.x, fr.y, valid=usable)
         outline = [withStroke(linewidth=3, foreground="black")]
         ax.plot(xs * nm, ys * nm, color="white", linewidth=1.3, path_effects=outline)
         # end labels a little inside the line, offset to its left side
@@ -446,17 +532,20 @@ def render_quicklook(
             axp.set_ylim(mid - p_scale * 1e-12, mid + p_scale * 1e-12)
         axp.set_xlabel("distance along the line from A to B (nm)", fontsize=9)
         axp.set_ylabel(f"height ({p_unit})", fontsize=9)
-        axp.set_title("height profile across the steepest feature", fontsize=9, loc="left")
+        axp.set_title("height profile across the steepest feature" if feature else
+                      "height profile along the middle row (no distinct feature)",
+                      fontsize=9, loc="left")
         axp.grid(True, color="0.88", linewidth=0.6)
         axp.tick_params(labelsize=8)
-        step = _number(ds.attrs.get("step_height_m"))
+        step = as_number(ds.attrs.get("step_height_m"))
         if step is not None:
-            su = _number(ds.attrs.get("step_height_uncertainty_m"))
+            su = as_number(ds.attrs.get("step_height_uncertainty_m"))
             txt = "fitted step height " + format_uncertain(step, su, scale=1e12, unit="pm")
             axp.text(0.99, 0.06, txt, transform=axp.transAxes, ha="right", va="bottom",
                      fontsize=8, bbox={"facecolor": "white", "alpha": 0.85,
                                        "edgecolor": "0.8", "boxstyle": "round,pad=0.25"})
-    return _save_figure(fig, Path(path), dpi)
+    FigureCanvasAgg(fig)
+    return fig
 
 
 def render_thumbnail(
