@@ -57,7 +57,7 @@ from pipeline.stages.barrier import (
     estimate_work_function,
     two_setpoint_work_function,
 )
-from pipeline.stages.calibrate import z_scale_from_steps
+from pipeline.stages.calibrate import scale_lateral, z_scale_from_steps
 from pipeline.stages.drift import (
     DriftModel,
     drift_table,
@@ -473,6 +473,20 @@ def _run(
     if drift_model is not None:
         summary.drift_velocity_m_per_s = (float(run_attrs["drift_velocity_x_m_per_s"]),
                                           float(run_attrs["drift_velocity_y_m_per_s"]))
+    # lateral scale from the atomically resolved frames, measured after the drift correction
+    # (drift shears a frame) and applied to the coordinates as the store is written
+    lateral = None
+    if config.calibrate.lattice_constant_m and finals:
+        lateral = _lateral_scale(executor, finals, config, emit)
+        if lateral is not None:
+            run_attrs.update(lateral)
+            for axis in ("x", "y"):  # the drift was measured in nominal lengths
+                factor = lateral[f"lateral_scale_{axis}"]
+                for name in (f"drift_velocity_{axis}_m_per_s",
+                             f"drift_velocity_uncertainty_{axis}_m_per_s",
+                             f"drift_velocity_{axis}_nm_per_min"):
+                    if name in run_attrs:
+                        run_attrs[name] = float(run_attrs[name]) * factor
     run_attrs.update(extra_run_attrs)
 
     # 6. commit
@@ -482,10 +496,50 @@ def _run(
     finals_sorted = sorted(finals, key=lambda p: order.index(Path(p).stem))
     maps = [(f"maps/{s.attrs.get('curve_set_id', Path(s.path).stem)}", s.barrier_map)
             for s in surveys if s.barrier_map is not None]
-    write_store(store, frames=(read_staged(p) for p in finals_sorted), run=run_ds,
+    def final_frames() -> Iterator[xr.Dataset]:
+        for p in finals_sorted:
+            ds = read_staged(p)
+            if lateral is not None:
+                ds = scale_lateral(ds, scale_x=lateral["lateral_scale_x"],
+                                   scale_y=lateral["lateral_scale_y"])
+            yield ds
+
+    write_store(store, frames=final_frames(), run=run_ds,
                 failures=summary.failures, title=config.run.title, extra_groups=maps,
                 history=history or f"isogap process ({datetime.now(UTC):%Y-%m-%d})")
     emit(Event("advance", name="writing store"))
+
+
+def _lateral_scale(
+    executor: Any, staged: list[str], config: Config, emit: Callable[[Event], None],
+) -> dict[str, Any] | None:
+    """Lateral scale factors from the run's atomically resolved frames (confidence-weighted)."""
+    emit(Event("pass", name="lattice", total=len(staged)))
+    found = []
+    for _, res in executor.map_unordered(tasks.lattice_of_frame,
+                                         [(p, config) for p in staged]):
+        emit(Event("advance", name="lattice"))
+        if res is not None:
+            found.append(res)
+    if not found:
+        emit(Event("warning", message="lateral scale not calibrated: no atomically resolved "
+                   "frame in the run"))
+        return None
+    w = np.array([c.confidence for c in found], dtype=float)
+    sx = np.array([c.scale_x for c in found])
+    sy = np.array([c.scale_y for c in found])
+    skew = np.array([c.skew_deg for c in found])
+
+    def spread(v: np.ndarray) -> float:  # standard error of the mean over frames
+        return float(np.std(v, ddof=1) / np.sqrt(v.size)) if v.size > 1 else float("nan")
+    return {
+        "lateral_scale_x": float(np.average(sx, weights=w)),
+        "lateral_scale_y": float(np.average(sy, weights=w)),
+        "lateral_scale_x_uncertainty": spread(sx),
+        "lateral_scale_y_uncertainty": spread(sy),
+        "lateral_skew_deg": float(np.average(skew, weights=w)),
+        "lateral_calibration_frames": ", ".join(c.frame_id for c in found),
+    }
 
 
 def _finalize(staged: str, store: str, config: Config, drift_model: Any, run_t0: str,

@@ -23,7 +23,11 @@ from pipeline.io.readers import file_sha256, read_file
 from pipeline.io.store import Failure, read_staged, write_staged
 from pipeline.model import BAD_PIXELS, get_warnings, parse_time
 from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, apparent_barrier_map, fit_curves
-from pipeline.stages.calibrate import scale_height
+from pipeline.stages.calibrate import (
+    LatticeCalibration,
+    measure_lattice,
+    scale_height,
+)
 from pipeline.stages.drift import DriftModel, FrameShift, correct_drift, measure_frame_shift
 from pipeline.stages.height import reconstruct_height
 from pipeline.stages.level import level_lines, level_terraces, repair_scars, subtract_background
@@ -34,6 +38,7 @@ __all__ = [
     "SurveyResult",
     "curve_fit_options",
     "finalize_frame",
+    "lattice_of_frame",
     "process_frame",
     "register_pair",
     "survey_file",
@@ -208,11 +213,21 @@ def register_pair(previous: str, current: str, config: Config) -> FrameShift:
     return measure_frame_shift(a, b, upsample_factor=config.drift.upsample_factor)
 
 
+def lattice_of_frame(staged: str, config: Config) -> LatticeCalibration | None:
+    """The lateral calibration from one staged frame, or None if it is not atomically resolved."""
+    try:
+        return measure_lattice(read_staged(staged),
+                               lattice_constant_m=float(config.calibrate.lattice_constant_m),
+                               min_peak_snr=config.calibrate.min_lattice_peak_snr)
+    except IsogapError:
+        return None
+
+
 def finalize_frame(
     staged: str, store: str, *, config: Config, drift_model: DriftModel | None, run_t0: str,
     z_scale: float, z_scale_uncertainty: float, extra_attrs: dict[str, Any],
 ) -> FrameSummary:
-    """Run-level corrections of one staged frame: drift inside the frame, then the z scale."""
+    """Run-level corrections of one staged frame: drift inside it, then the z scale."""
     ds = read_staged(staged)
     out = FrameSummary(path=str(ds.attrs.get("source_file", staged)))
     stage = "correct_drift"

@@ -43,3 +43,21 @@ def tiny_store(tiny_run: Path, tmp_path_factory: pytest.TempPathFactory, serial_
     store = tmp_path_factory.mktemp("store") / "tiny.h5"
     summary = run_batch(tiny_run, store, serial_config)
     return store, summary
+
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="session")
+def sample_calibrated(tmp_path_factory: pytest.TempPathFactory):
+    """The shipped sample run processed with the worked-example calibration config."""
+    import tomllib
+
+    from pipeline.batch import run_batch
+    from pipeline.config import load_config
+
+    cfg = load_config(ROOT / "configs" / "au111-calibrated.toml")
+    store = tmp_path_factory.mktemp("sample") / "night-01.h5"
+    summary = run_batch(ROOT / "sample_scans" / "night-01", store, cfg)
+    truth = tomllib.loads((ROOT / "sample_scans" / "night-01" / "truth" / "run.toml").read_text())
+    return store, summary, truth
