@@ -569,8 +569,11 @@ def _drift(
     jobs = [(staged[order[i]], staged[order[j]], config) for i, j in pairs]
     emit(Event("pass", name="drift", total=len(jobs)))
     shifts: list[Any] = [None] * len(jobs)
-    for k, res in executor.map_unordered(tasks.register_pair, jobs):
-        shifts[k] = res
+    updowns = []
+    for k, (shift, updown) in executor.map_unordered(tasks.register_pair, jobs):
+        shifts[k] = shift
+        if updown is not None and updown.confidence >= d.min_confidence:
+            updowns.append(updown)
         emit(Event("advance", name="drift"))
     try:
         model = fit_drift_series(times, shifts, frame_ids=order, min_confidence=d.min_confidence,
@@ -586,4 +589,28 @@ def _drift(
     starts = np.array([frame_times_s(ds, run_start=run_t0)[0] for ds in stand_ins])
     table = drift_table(order, times, shifts, model, frame_start_s=starts,
                         mean_heights_m=means, z_drift=z_drift, run_start=run_t0)
+    if updowns:
+        table.attrs.update(_combine_up_down(updowns, model, emit))
     return (model if model.is_usable else None), table
+
+
+def _combine_up_down(
+    updowns: list[Any], model: DriftModel, emit: Callable[[Event], None],
+) -> dict[str, Any]:
+    """Inverse-variance mean of the up/down-pair velocities: an independent check of the model
+    (it needs no second frame time, only the shear between opposite slow directions)."""
+    attrs: dict[str, Any] = {"drift_updown_pairs": len(updowns)}
+    for axis in ("x", "y"):
+        v = np.array([getattr(u, f"velocity_{axis}_m_per_s") for u in updowns])
+        s = np.array([getattr(u, f"uncertainty_{axis}_m_per_s") for u in updowns])
+        w = 1.0 / np.maximum(s, 1e-30) ** 2
+        mean, unc = float(np.sum(w * v) / np.sum(w)), float(np.sqrt(1.0 / np.sum(w)))
+        attrs[f"drift_updown_velocity_{axis}_m_per_s"] = mean
+        attrs[f"drift_updown_velocity_uncertainty_{axis}_m_per_s"] = unc
+        fitted = getattr(model, f"velocity_{axis}_m_per_s")
+        fitted_unc = getattr(model, f"velocity_uncertainty_{axis}_m_per_s")
+        if model.is_usable and abs(mean - fitted) > 4 * np.hypot(unc, fitted_unc):
+            emit(Event("warning", message=f"drift: up/down pairs give v_{axis} = "
+                       f"{mean * 6e10:+.3f} nm/min, the frame-to-frame model "
+                       f"{fitted * 6e10:+.3f} nm/min"))
+    return attrs

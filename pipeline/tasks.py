@@ -28,7 +28,14 @@ from pipeline.stages.calibrate import (
     measure_lattice,
     scale_height,
 )
-from pipeline.stages.drift import DriftModel, FrameShift, correct_drift, measure_frame_shift
+from pipeline.stages.drift import (
+    DriftModel,
+    FrameShift,
+    UpDownDrift,
+    correct_drift,
+    drift_from_up_down_pair,
+    measure_frame_shift,
+)
 from pipeline.stages.height import reconstruct_height
 from pipeline.stages.level import level_lines, level_terraces, repair_scars, subtract_background
 from pipeline.stages.quality import assess_quality, flag_tip_changes
@@ -207,10 +214,25 @@ def _summarise(ds: xr.Dataset, out: FrameSummary) -> None:
     out.n_warnings = len(get_warnings(ds))
 
 
-def register_pair(previous: str, current: str, config: Config) -> FrameShift:
-    """Measure the drift shift between two staged, levelled frames."""
+def register_pair(
+    previous: str, current: str, config: Config,
+) -> tuple[FrameShift, UpDownDrift | None]:
+    """Drift shift between two staged, levelled frames; for a pair of one area scanned in
+    opposite slow directions also the drift velocity within one frame time."""
     a, b = read_staged(previous), read_staged(current)
-    return measure_frame_shift(a, b, upsample_factor=config.drift.upsample_factor)
+    up = config.drift.upsample_factor
+    shift = measure_frame_shift(a, b, upsample_factor=up)
+    updown = None
+    same_area = all(np.isclose(float(a.attrs.get(k, 0.0)), float(b.attrs.get(k, 0.0)),
+                               rtol=0, atol=1e-12)
+                    for k in ("scan_center_x_m", "scan_center_y_m"))
+    if same_area and a.attrs.get("slow_direction") != b.attrs.get("slow_direction"):
+        try:
+            updown = drift_from_up_down_pair(a, b, upsample_factor=up,
+                                             min_confidence=config.drift.min_confidence)
+        except IsogapError:
+            updown = None
+    return shift, updown
 
 
 def lattice_of_frame(staged: str, config: Config) -> LatticeCalibration | None:
