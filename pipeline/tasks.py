@@ -19,7 +19,7 @@ import xarray as xr
 
 from pipeline.config import Config
 from pipeline.errors import IsogapError
-from pipeline.io.readers import file_sha256, read_file
+from pipeline.io.readers import file_sha256, read_file, read_header
 from pipeline.io.store import Failure, read_staged, write_staged
 from pipeline.model import BAD_PIXELS, get_warnings, parse_time
 from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, apparent_barrier_map, fit_curves
@@ -99,6 +99,12 @@ def curve_fit_options(config: Config) -> dict[str, Any]:
 def survey_file(path: str, config: Config) -> SurveyResult:
     """Read one input; fit its approach curves if it holds curves, else note the frame's attrs."""
     res = SurveyResult(path=path)
+    header = read_header(path)
+    if header is not None and header["kind"] == "frame":
+        # a frame is read (and validated) once, by its own task: its header is enough here
+        res.kind, res.sha256 = "frame", str(header["source_sha256"])
+        res.attrs = {k: v for k, v in header.items() if isinstance(v, str | int | float)}
+        return res
     try:
         ds = read_file(path, piezo_z_m_per_V=config.input.piezo_z_m_per_V)
     except Exception as exc:  # every failure is recorded, none stops the run

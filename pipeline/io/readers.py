@@ -53,7 +53,7 @@ from pipeline.errors import (
     UnreadableFileError,
 )
 from pipeline.io.netcdf import NETCDF_READER
-from pipeline.io.npz import NPZ_READER, SIDECAR_SUFFIX
+from pipeline.io.npz import NPZ_READER, SIDECAR_SUFFIX, read_sidecar
 from pipeline.io.textgrid import TEXTGRID_READER
 from pipeline.model import sanitize_id, validate_curves, validate_raw_frame
 
@@ -67,6 +67,7 @@ __all__ = [
     "find_inputs",
     "get_readers",
     "read_file",
+    "read_header",
     "reader_for",
     "register_reader",
 ]
@@ -413,6 +414,42 @@ def read_file(path: str | os.PathLike[str], *,
     except (TypeError, ValueError) as exc:
         raise UnreadableFileError(
             f"{src}: contents cannot be interpreted ({type(exc).__name__}: {exc})") from exc
+
+
+def read_header(path: str | os.PathLike[str]) -> dict[str, Any] | None:
+    """The global attributes of a built-in-format file, read without its arrays.
+
+    Cheap (an HDF5 header or a TOML sidecar), so a scheduler can sort files into frames and
+    curves without loading them. Adds ``source_file``, ``source_sha256``, ``source_stem`` and,
+    for frames, ``frame_id`` exactly as :func:`read_file` would. Returns ``None`` when a header
+    alone cannot tell (plug-in formats, unreadable or inconsistent files): call
+    :func:`read_file`, which also reports what is wrong. Nothing here is validated.
+    """
+    p = Path(path)
+    src = os.path.abspath(p)
+    suffix = p.suffix.lower()
+    try:
+        if suffix in (".nc", ".h5"):
+            import h5py
+
+            with h5py.File(p, "r") as fh:
+                attrs = {k: _plain(v, k, src) for k, v in fh.attrs.items()
+                         if not k.startswith("_")}
+        elif suffix in (".npz", ".txt", ".csv"):
+            attrs, _ = read_sidecar(p)
+            attrs = dict(attrs)
+        else:
+            return None
+    except Exception:  # whatever is wrong, read_file will say it properly
+        return None
+    if attrs.get("kind") not in KINDS:
+        return None
+    attrs["source_file"] = src
+    attrs["source_sha256"] = file_sha256(p)
+    attrs["source_stem"] = p.stem
+    if attrs["kind"] == "frame":
+        attrs["frame_id"] = sanitize_id(attrs.get("frame_id") or p.stem)
+    return attrs
 
 
 # --------------------------------------------------------------------------------------------
