@@ -104,6 +104,10 @@ class ProcessExecutor:
 
     def __init__(self, workers: int):
         self.workers = workers or os.cpu_count() or 1
+        # one BLAS/FFT thread per worker: N workers on N cores, not N × N threads fighting.
+        # Set before the fork server starts, so every worker inherits it.
+        for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+            os.environ.setdefault(var, "1")
         self._pool = ProcessPoolExecutor(max_workers=self.workers,
                                          mp_context=get_context("forkserver"))
 

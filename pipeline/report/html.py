@@ -28,6 +28,7 @@ from pipeline.errors import IsogapError
 from pipeline.io.export import OutputExistsError
 from pipeline.io.store import Failure, open_store
 from pipeline.model import sanitize_id
+from pipeline.report.map_plot import plot_barrier_map
 from pipeline.report.quicklook import (
     ReportError,
     as_number,
@@ -444,11 +445,21 @@ def _run_summary(run: xr.Dataset) -> list[tuple[str, str]]:
         uz = as_number(a.get("z_drift_rate_uncertainty_m_per_s"))
         items.append(("z creep rate", _signed(format_uncertain(
             vz, uz, scale=1e9 * 60.0, unit="nm/min")).replace("-", "−")))
-    for key, label in (("z_scale_factor", "z scale factor from known steps"),):
+    vux, vuy = (as_number(a.get(f"drift_updown_velocity_{k}_m_per_s")) for k in ("x", "y"))
+    if vux is not None and vuy is not None:
+        items.append(("drift from up/down frame pairs", (
+            f"x {vux * 6e10:+.3f}, y {vuy * 6e10:+.3f} nm/min "
+            f"({a.get('drift_updown_pairs', '?')} pair(s))").replace("-", "−")))
+    for key, label in (("z_scale_factor", "z scale factor from known steps"),
+                       ("lateral_scale_x", "x scale factor from the lattice"),
+                       ("lateral_scale_y", "y scale factor from the lattice")):
         v = as_number(a.get(key))
         if v is not None:
             items.append((label, format_uncertain(
                 v, as_number(a.get(f"{key}_uncertainty")), scale=1.0, unit="").strip()))
+    skew = as_number(a.get("lateral_skew_deg"))
+    if skew is not None:
+        items.append(("lattice skew (not corrected)", f"{skew:+.3f}°".replace("-", "−")))
     return items
 
 
@@ -607,6 +618,12 @@ def write_report(
             continue
         if made is not None:
             plots.append((_href("img", "run", fname), caption, kind))
+    for map_id in store.map_ids:
+        fname = f"map_{sanitize_id(map_id)}.png"
+        plot_barrier_map(store.barrier_map(map_id), out / "img" / "run" / fname, name=map_id,
+                         dpi=dpi)
+        plots.append((_href("img", "run", fname), f"Apparent-barrier map from the curve grid "
+                      f"{map_id}", "wide"))
     page = _page(attrs=store.attrs, store=store.path, rows=rows, run=run,
                  failures=store.failures(), plots=plots, notes=notes)
     index = out / "index.html"
