@@ -240,8 +240,8 @@ def test_report_of_a_processed_run(tiny_store, tmp_path):
     assert ("img/run/drift.png" in parser.images) == has_drift
 
 
-def test_curve_plot_needs_the_source_files(tmp_path):
-    """Without the raw curves (moved source file) the page says why the plot is missing."""
+def test_curve_plot_without_source_files_or_fit_columns(tmp_path):
+    """Without the raw curves the fits come from the table; without fit columns, no plot."""
     pytest.importorskip("pipeline.report.barrier_plot")
     run = xr.Dataset(
         {"source_file": (("curve",), np.array(["/gone/curves_000.nc"] * 2)),
@@ -252,7 +252,9 @@ def test_curve_plot_needs_the_source_files(tmp_path):
     store = write_store(tmp_path / "s.h5", frames=[], run=run, title="curves only")
     page = write_report(store, tmp_path / "r").read_text()
     assert "2 fitted, 2 used" in page
-    assert "plot not drawn (source file /gone/curves_000.nc is not at its recorded place" in page
+    assert "fits drawn from the stored table only (source file /gone/curves_000.nc is not at " \
+           "its recorded place" in page
+    assert "plot not drawn" in page and "log_current_at_zero" in page  # names missing columns
     assert "<img" not in page
 
 

@@ -1,7 +1,9 @@
 """Figure of a run's approach-curve fits: the curves with their fit ranges, and φ_ap per curve.
 
-Display only: the data stay in SI units and are converted to nm for the axis. The figure is a
-:class:`~matplotlib.figure.Figure` on an Agg canvas (no pyplot state), safe in worker processes.
+Drawn from the curves and their fit table, or from the fit table alone (``curves=None``: what a
+store keeps). Display only: the data stay in SI units and are converted to nm for the axis. The
+figure is a :class:`~matplotlib.figure.Figure` on an Agg canvas (no pyplot state), safe in worker
+processes.
 """
 
 from __future__ import annotations
@@ -9,7 +11,9 @@ from __future__ import annotations
 import math
 import os
 from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import xarray as xr
@@ -36,8 +40,13 @@ def _as_list(curves: xr.Dataset | Sequence[xr.Dataset]) -> list[xr.Dataset]:
     return [curves] if isinstance(curves, xr.Dataset) else list(curves)
 
 
+#: Columns of the fit table the figure reads (:func:`pipeline.stages.barrier.fit_curves`).
+TABLE_COLUMNS = ("accepted", "reason", "phi_ap_eV", "phi_ap_uncertainty_eV",
+                 "log_current_at_zero", "slope_per_m", "z_min_m", "z_max_m")
+
+
 def plot_approach_curves(
-    curves: xr.Dataset | Sequence[xr.Dataset],
+    curves: xr.Dataset | Sequence[xr.Dataset] | None,
     table: xr.Dataset,
     estimate: WorkFunctionEstimate | None = None,
     path: str | os.PathLike[str] | None = None,
@@ -49,12 +58,15 @@ def plot_approach_curves(
 
     Parameters
     ----------
-    curves : xarray.Dataset or sequence of them
-        The curve datasets, in the order their fits appear in ``table``.
+    curves : xarray.Dataset or sequence of them, or None
+        The curve datasets, in the order their fits appear in ``table``. ``None`` draws the
+        figure from the table alone (a store keeps the fits, not the samples): the left panel
+        then shows each curve's fitted line over its fit range, without the samples.
     table : xarray.Dataset
         The fit table (:func:`pipeline.stages.barrier.fit_curves`, combined over the datasets
         with :func:`pipeline.stages.barrier.combine_fit_tables`; after outlier rejection use
-        :meth:`~pipeline.stages.barrier.WorkFunctionEstimate.updated_table`).
+        :meth:`~pipeline.stages.barrier.WorkFunctionEstimate.updated_table`), or the same
+        variables read back from a store's run group.
     estimate : WorkFunctionEstimate, optional
         The run's estimate (title and the band on the right-hand panel).
     path : path-like, optional
@@ -68,24 +80,24 @@ def plot_approach_curves(
     -------
     matplotlib.figure.Figure
         Left: |I| against z (nm, log scale) for every curve; samples in grey, the fit range of
-        accepted curves as a coloured line along the fit, rejected curves dashed grey.
+        accepted curves as a coloured line along the fit, rejected curves dashed grey. Without
+        ``curves``: the fitted lines only (accepted coloured, rejected ones that have a fit
+        dashed grey) and the median noise floor as a dotted line.
         Right: φ_ap per curve with its uncertainty, the run estimate ± its uncertainty as a
         band, rejected curves as grey crosses with their reason.
 
     Raises
     ------
     ProcessingError
-        If the table's length differs from the number of curves.
+        If the table lacks a column the figure needs, or its length differs from the number of
+        curves.
     """
-    sets = _as_list(curves)
-    z_all = [np.atleast_2d(np.asarray(ds["z"].values, float)) for ds in sets]
-    i_all = [np.atleast_2d(np.asarray(ds["current"].values, float)) for ds in sets]
-    z = np.concatenate(z_all, axis=0) if z_all else np.zeros((0, 0))
-    cur = np.concatenate(i_all, axis=0) if i_all else np.zeros((0, 0))
     n = table.sizes.get("curve", 0)
-    if z.shape[0] != n:
-        raise ProcessingError(f"plot_approach_curves: {z.shape[0]} curve(s) but {n} row(s) in "
-                              "the fit table")
+    missing = [c for c in TABLE_COLUMNS if c not in table]
+    if missing:
+        raise ProcessingError(f"plot_approach_curves: the fit table has no {', '.join(missing)} "
+                              f"column(s) (needed: {', '.join(TABLE_COLUMNS)})")
+    samples = None if curves is None else _stacked_samples(curves, n)
     acc = np.asarray(table["accepted"].values).astype(bool)
     reason = [str(r) for r in table["reason"].values]
     ids = ([str(c) for c in table["curve_id"].values] if "curve_id" in table
@@ -109,7 +121,11 @@ def plot_approach_curves(
               else np.zeros(n))
     floors = floors[np.isfinite(floors) & (floors > 0)]
     floor = float(np.median(floors)) if floors.size else 0.0
-    _draw_curves(ax_c, z, cur, acc, a, b, zmin, zmax, colours, floor)
+    lines = _FitLines(acc, a, b, zmin, zmax, colours)
+    if samples is None:
+        _draw_fits_only(ax_c, lines, floor)
+    else:
+        _draw_curves(ax_c, *samples, lines, floor)
     _draw_phi(ax_p, phi, sig, acc, reason, ids, estimate, colours, max_labels)
 
     title = "approach curves"
@@ -126,9 +142,42 @@ def plot_approach_curves(
     return fig
 
 
-def _draw_curves(ax: Axes, z: np.ndarray, cur: np.ndarray, acc: np.ndarray, a: np.ndarray,
-                 b: np.ndarray, zmin: np.ndarray, zmax: np.ndarray,
-                 colours: dict[int, tuple[float, ...]], floor: float) -> None:
+def _stacked_samples(curves: xr.Dataset | Sequence[xr.Dataset], n: int
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """(z, current) of all curves stacked along the first axis; checked against the table."""
+    sets = _as_list(curves)
+    z_all = [np.atleast_2d(np.asarray(ds["z"].values, float)) for ds in sets]
+    i_all = [np.atleast_2d(np.asarray(ds["current"].values, float)) for ds in sets]
+    z = np.concatenate(z_all, axis=0) if z_all else np.zeros((0, 0))
+    cur = np.concatenate(i_all, axis=0) if i_all else np.zeros((0, 0))
+    if z.shape[0] != n:
+        raise ProcessingError(f"plot_approach_curves: {z.shape[0]} curve(s) but {n} row(s) in "
+                              "the fit table")
+    return z, cur
+
+
+@dataclass(frozen=True)
+class _FitLines:
+    """The fitted lines ln|I| = a + b z of the table, each over its fit range [z_min, z_max]."""
+
+    accepted: np.ndarray
+    a: np.ndarray
+    b: np.ndarray
+    z_min: np.ndarray
+    z_max: np.ndarray
+    colours: dict[int, tuple[float, ...]]
+
+    def has_fit(self, k: int) -> bool:
+        return bool(np.isfinite([self.a[k], self.b[k], self.z_min[k], self.z_max[k]]).all())
+
+    def draw(self, ax: Axes, k: int, **style: Any) -> None:
+        zf = np.linspace(self.z_min[k], self.z_max[k], 50)
+        ax.plot(zf * 1e9, np.exp(self.a[k] + self.b[k] * zf), **style)
+
+
+def _draw_curves(ax: Axes, z: np.ndarray, cur: np.ndarray, lines: _FitLines,
+                 floor: float) -> None:
+    acc = lines.accepted
     for k in range(z.shape[0]):
         mag = np.abs(cur[k])
         ok = np.isfinite(mag) & np.isfinite(z[k]) & (mag > 0)
@@ -137,21 +186,46 @@ def _draw_curves(ax: Axes, z: np.ndarray, cur: np.ndarray, acc: np.ndarray, a: n
             ax.plot(zn, mag[ok], ".", ms=2.0, color="#b0b0b0", zorder=1)
         else:
             ax.plot(zn, mag[ok], "--", lw=0.8, color=REJECTED_COLOR, zorder=1)
-        if acc[k] and math.isfinite(a[k]) and math.isfinite(b[k]):
-            zf = np.linspace(zmin[k], zmax[k], 50)
-            ax.plot(zf * 1e9, np.exp(a[k] + b[k] * zf), "-", lw=1.8, color=colours[k], zorder=3)
+        if acc[k] and math.isfinite(lines.a[k]) and math.isfinite(lines.b[k]):
+            lines.draw(ax, k, ls="-", lw=1.8, color=lines.colours[k], zorder=3)
+    _decorate_curve_axes(ax, floor, [
+        Line2D([], [], ls="", marker=".", color="#b0b0b0", label="samples"),
+        Line2D([], [], lw=1.8, color=lines.colours[min(lines.colours)] if lines.colours else "k",
+               label="fit over its range"),
+        Line2D([], [], ls="--", lw=0.8, color=REJECTED_COLOR, label="rejected curve"),
+    ])
+
+
+def _draw_fits_only(ax: Axes, lines: _FitLines, floor: float) -> None:
+    """The left panel from the table alone: fitted lines over their ranges, no samples."""
+    for k in range(lines.accepted.size):
+        if not lines.has_fit(k):
+            continue
+        if lines.accepted[k]:
+            lines.draw(ax, k, ls="-", lw=1.8, color=lines.colours[k], zorder=3)
+        else:
+            lines.draw(ax, k, ls="--", lw=1.0, color=REJECTED_COLOR, zorder=2)
+    handles = [
+        Line2D([], [], lw=1.8, color=lines.colours[min(lines.colours)] if lines.colours else "k",
+               label="fit over its range"),
+        Line2D([], [], ls="--", lw=1.0, color=REJECTED_COLOR, label="fit of a rejected curve"),
+    ]
+    if floor > 0:
+        ax.axhline(floor, ls=":", lw=1.0, color=REJECTED_COLOR, zorder=1)
+        handles.append(Line2D([], [], ls=":", lw=1.0, color=REJECTED_COLOR,
+                              label="noise floor (median)"))
+    ax.set_title("fits from the table (samples not stored)", fontsize=9, color="#444444")
+    _decorate_curve_axes(ax, floor, handles)
+
+
+def _decorate_curve_axes(ax: Axes, floor: float, handles: list[Line2D]) -> None:
     ax.set_yscale("log")
     if floor > 0:  # show the noise floor, not the decades of noise below it
         ax.set_ylim(bottom=0.3 * floor)
     ax.set_xlabel("tip displacement z (nm, + = retract)")
     ax.set_ylabel("|I| (A)")
     ax.grid(True, which="major", lw=0.4, alpha=0.5)
-    ax.legend(handles=[
-        Line2D([], [], ls="", marker=".", color="#b0b0b0", label="samples"),
-        Line2D([], [], lw=1.8, color=colours[min(colours)] if colours else "k",
-               label="fit over its range"),
-        Line2D([], [], ls="--", lw=0.8, color=REJECTED_COLOR, label="rejected curve"),
-    ], loc="upper right", fontsize=8, frameon=False)
+    ax.legend(handles=handles, loc="upper right", fontsize=8, frameon=False)
 
 
 def _draw_phi(ax: Axes, phi: np.ndarray, sig: np.ndarray, acc: np.ndarray, reason: list[str],

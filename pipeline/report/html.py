@@ -226,11 +226,15 @@ def _raw_curves(table: xr.Dataset, run: xr.Dataset) -> list[xr.Dataset]:
     return curves
 
 
-def _plot_curve_fits(run: xr.Dataset, path: Path) -> Path | None:
+def _plot_curve_fits(run: xr.Dataset, path: Path, notes: list[str]) -> Path | None:
     table = _curve_table(run)
     if table is None or _barrier_plot is None:
         return None
-    curves = _raw_curves(table, run)
+    try:  # the samples come from the source files; the fits alone come from the store
+        curves: list[xr.Dataset] | None = _raw_curves(table, run)
+    except ReportError as exc:
+        curves = None
+        notes.append(f"approach curves: fits drawn from the stored table only ({exc})")
     fig = _barrier_plot.plot_approach_curves(curves, table, _estimate_from_attrs(run.attrs, table),
                                              path)
     if not path.is_file() and fig is not None:
@@ -238,7 +242,7 @@ def _plot_curve_fits(run: xr.Dataset, path: Path) -> Path | None:
     return path if path.is_file() else None
 
 
-def _plot_drift(run: xr.Dataset, path: Path) -> Path | None:
+def _plot_drift(run: xr.Dataset, path: Path, notes: list[str]) -> Path | None:
     table = _drift_series(run)
     if table is None or _drift_plot is None:
         return None
@@ -612,7 +616,7 @@ def write_report(
         (_plot_drift, "drift.png", "Drift over the run (tip relative to sample)", "normal"),
     ):
         try:
-            made = maker(run, out / "img" / "run" / fname)
+            made = maker(run, out / "img" / "run" / fname, notes)
         except IsogapError as exc:
             notes.append(f"{caption.split(':')[0]}: plot not drawn ({exc})")
             continue
