@@ -190,3 +190,27 @@ def test_reprocess_with_stored_config_reproduces(run_copy, tmp_path, serial_toml
         np.testing.assert_array_equal(a.frame(fid)["height"].values,
                                       b.frame(fid)["height"].values)
     assert b.run().attrs["previous_config_sha256"] == a.run().attrs["config_sha256"]
+
+
+def test_follow_missing_folder_exits_2(tmp_path):
+    r = invoke("process", tmp_path / "nope", "--store", tmp_path / "s.h5", "--follow")
+    assert r.exit_code == 2 and "does not exist" in r.output
+
+
+def test_dask_without_scheduler_exits_2(tiny_run, tmp_path):
+    r = invoke("process", tiny_run, "--store", tmp_path / "s.h5", "--executor", "dask")
+    assert r.exit_code == 2 and "scheduler_address" in r.output
+
+
+def test_dask_unreachable_scheduler_exits_2(tiny_run, tmp_path):
+    pytest.importorskip("distributed")
+    r = invoke("process", tiny_run, "--store", tmp_path / "s.h5",
+               "--scheduler", "tcp://127.0.0.1:9")
+    assert r.exit_code == 2 and "cannot reach the Dask scheduler" in r.output
+
+
+def test_reprocess_of_a_non_store_exits_2(tmp_path):
+    junk = tmp_path / "junk.h5"
+    junk.write_text("x")
+    r = invoke("reprocess", junk)
+    assert r.exit_code == 2 and "not a readable HDF5 store" in r.output

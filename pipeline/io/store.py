@@ -340,6 +340,11 @@ def write_store(
                 _dump_group(handle, "/".join(parts), ds)
             _dump_group(handle, "failures", _failures_dataset(failures))
         os.replace(tmp, path)
+    except OSError as exc:  # e.g. a full disk: the previous store is still in place
+        tmp.unlink(missing_ok=True)
+        raise StoreError(f"store {path}: cannot be written ({exc.strerror or exc}); the "
+                         "previous store, if any, is unchanged and the staged parts are kept "
+                         "for a rerun") from None
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise

@@ -144,3 +144,17 @@ def test_open_store_errors(tmp_path):
     write_store(st, frames=[_frame("a")], run=xr.Dataset())
     with pytest.raises(StoreError, match="no frame 'zz'"):
         open_store(st).frame("zz")
+
+
+def test_unwritable_commit_is_a_store_error_and_keeps_the_old_store(tmp_path, monkeypatch):
+    store = tmp_path / "s.h5"
+    write_store(store, frames=[_frame("a")], run=xr.Dataset(attrs={"x": 1}))
+    before = store.read_bytes()
+
+    def no_space(*args, **kwargs):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr("pipeline.io.store.os.replace", no_space)
+    with pytest.raises(StoreError, match="cannot be written \\(No space left on device\\)"):
+        write_store(store, frames=[_frame("b")], run=xr.Dataset())
+    assert store.read_bytes() == before
