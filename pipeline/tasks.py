@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import traceback
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -19,7 +18,7 @@ import xarray as xr
 
 from pipeline.config import Config
 from pipeline.errors import IsogapError
-from pipeline.io.readers import file_sha256, read_file, read_header
+from pipeline.io.readers import read_file, read_header
 from pipeline.io.store import Failure, read_staged, write_staged
 from pipeline.model import BAD_PIXELS, get_warnings, parse_time
 from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, apparent_barrier_map, fit_curves
@@ -275,9 +274,3 @@ def finalize_frame(
     except Exception as exc:
         out.failure = _failure(out.path, stage, exc)
     return out
-
-
-def source_unchanged(path: str | Path, sha256: str) -> bool:
-    """True if the file still exists with the recorded hash."""
-    p = Path(path)
-    return p.is_file() and file_sha256(p) == sha256

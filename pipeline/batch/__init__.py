@@ -1,0 +1,297 @@
+"""A run folder → tasks → executor (serial / processes / Dask) → one writer → the store.
+
+The passes of a run, each a set of independent tasks carrying file paths (DESIGN.md §7):
+
+1. **survey** every input: approach curves are fitted, frames only looked at;
+2. the run's **work function** from the curve fits (or the configured fixed value);
+3. **frames**: height → levelling → quality, each result staged as its own file;
+4. **drift**: consecutive staged frames registered pairwise, a drift model fitted;
+5. **finalise**: drift corrected inside each frame, z scale from known steps applied;
+6. **commit**: the store rebuilt from the staged files through one handle, replaced atomically.
+
+Workers read their own input and return small summaries; only this process writes the store.
+Memory therefore depends on frame size × workers, not on the length of the run. Staged results
+carry the hash of their source file and a key of everything else they depend on, so rerunning
+the same command resumes: only what is missing or changed is recomputed.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import os
+import time
+from collections.abc import Callable, Iterator
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from pipeline import tasks
+from pipeline._version import __version__
+from pipeline.batch.events import Event, RunSummary
+from pipeline.batch.executors import make_executor
+from pipeline.batch.runlevel import drift_model as _drift
+from pipeline.batch.runlevel import lateral_scale as _lateral_scale
+from pipeline.batch.runlevel import work_function as _work_function
+from pipeline.config import Config, config_sha256, dump_toml
+from pipeline.errors import ConfigError, IsogapError
+from pipeline.io.readers import find_inputs
+from pipeline.io.store import (
+    Failure,
+    StoreLock,
+    check_writable,
+    read_staged,
+    staged_attrs,
+    staged_frames,
+    staging_dir,
+    write_store,
+)
+from pipeline.model import parse_time
+from pipeline.stages.calibrate import scale_lateral, z_scale_from_steps
+
+__all__ = ["Event", "RunSummary", "make_executor", "own_files", "run_batch"]
+
+log = logging.getLogger(__name__)
+
+
+def own_files(store: Path) -> list[Path]:
+    """The store's own files, in case it is written inside the run folder."""
+    return [store, store.with_name(store.name + ".lock"), staging_dir(store)]
+
+
+def _run_key(config: Config, phi: float, phi_unc: float) -> str:
+    """Hash of everything a staged frame depends on besides its source file."""
+    relevant = {name: getattr(config, name).model_dump()
+                for name in ("input", "height", "level", "quality")}
+    relevant["work_function"] = [round(phi, 9), round(phi_unc, 9)]
+    relevant["software"] = __version__  # a new release recomputes; stage versions live in it
+    return hashlib.sha256(json.dumps(relevant, sort_keys=True).encode()).hexdigest()[:16]
+
+
+def _pass(
+    executor: Any, name: str, fn: Callable[..., Any], jobs: list[tuple],
+    emit: Callable[[Event], None],
+) -> Iterator[Any]:
+    emit(Event("pass", name=name, total=len(jobs)))
+    for _, res in executor.map_unordered(fn, jobs):
+        emit(Event("advance", name=name))
+        yield res
+
+
+def run_batch(
+    run_dir: str | os.PathLike[str],
+    store: str | os.PathLike[str],
+    config: Config,
+    *,
+    on_event: Callable[[Event], None] | None = None,
+    inputs: list[Path] | None = None,
+    history: str = "",
+    extra_run_attrs: dict[str, Any] | None = None,
+) -> RunSummary:
+    """Process a run folder into a store. See the module docstring for the passes.
+
+    Parameters
+    ----------
+    run_dir : path
+        Folder of raw files (DESIGN.md §3).
+    store : path
+        Output HDF5 store; an existing one is rebuilt (its staged parts are reused when their
+        source file and configuration are unchanged).
+    config : Config
+        Effective configuration.
+    on_event : callable, optional
+        Receives :class:`Event` objects for progress display.
+    inputs : list of Path, optional
+        Explicit input files instead of the folder's contents (used by ``reprocess``).
+    """
+    t_start = time.perf_counter()
+    emit = on_event or (lambda e: None)
+    run_dir, store = Path(run_dir), Path(store)
+    if inputs is None:
+        if not run_dir.is_dir():
+            raise ConfigError(f"run folder {run_dir} does not exist or is not a folder")
+        inputs = find_inputs(run_dir, recursive=config.input.recursive,
+                             exclude=own_files(store))
+    summary = RunSummary(store=store, n_inputs=len(inputs))
+    check_writable(store, expected_bytes=sum(p.stat().st_size for p in inputs if p.is_file()))
+    with StoreLock(store):
+        executor = make_executor(config)
+        try:
+            _run(executor, inputs, store, config, summary, emit, history, extra_run_attrs or {})
+        finally:
+            executor.close()
+    summary.seconds = time.perf_counter() - t_start
+    return summary
+
+
+def _run(
+    executor: Any, inputs: list[Path], store: Path, config: Config, summary: RunSummary,
+    emit: Callable[[Event], None], history: str, extra_run_attrs: dict[str, Any],
+) -> None:
+    def fail(f: Failure) -> None:
+        summary.failures.append(f)
+        emit(Event("failure", message=f"{f.file}: {f.message}"))
+
+    # 1. survey
+    surveys: list[tasks.SurveyResult] = []
+    for res in _pass(executor, "reading", tasks.survey_file,
+                     [(str(p), config) for p in inputs], emit):
+        if res.failure:
+            fail(res.failure)
+        for w in res.warnings:
+            emit(Event("warning", message=w))
+        surveys.append(res)
+    surveys.sort(key=lambda r: r.path)
+    frames = [s for s in surveys if s.kind == "frame" and not s.failure]
+    summary.n_curves_files = sum(1 for s in surveys if s.kind == "curve")
+
+    # duplicate frame ids would overwrite each other's staged result: refuse the later ones
+    seen: dict[str, str] = {}
+    unique = []
+    for s in frames:
+        fid = str(s.attrs.get("frame_id"))
+        if fid in seen:
+            fail(Failure(s.path, "read", f"{s.path}: frame id {fid!r} is already used by "
+                                         f"{seen[fid]}; set a distinct 'frame_id' attribute"))
+            continue
+        seen[fid] = s.path
+        unique.append(s)
+    frames = unique
+
+    # 2. work function
+    estimate, table = _work_function(config, surveys, emit)
+    phi, phi_unc = estimate.work_function_eV, estimate.work_function_uncertainty_eV
+    summary.work_function_eV, summary.work_function_uncertainty_eV = phi, phi_unc
+    run_key = _run_key(config, phi, phi_unc)
+
+    # 3. frames (resume: reuse staged results whose source and run key are unchanged)
+    staged = staged_frames(store, "frames")
+    todo, reused = [], []
+    for s in frames:
+        fid = str(s.attrs["frame_id"])
+        old = staged.get(fid)
+        if old is not None:
+            try:
+                a = staged_attrs(old)
+            except IsogapError:
+                a = {}
+            if a.get("source_sha256") == s.sha256 and a.get("run_key") == run_key:
+                reused.append(str(old))
+                continue
+        todo.append(s)
+    summary.n_reused = len(reused)
+    done: list[tasks.FrameSummary] = []
+    for res in _pass(executor, "frames", tasks.process_frame,
+                     [(s.path, str(store), config, phi, phi_unc, run_key) for s in todo], emit):
+        if res.failure:
+            fail(res.failure)
+        else:
+            done.append(res)
+    staged_paths = {Path(r.staged).stem: r.staged for r in done}
+    staged_paths.update({Path(p).stem: p for p in reused})
+    starts = {fid: str(staged_attrs(p)["start_time"]) for fid, p in staged_paths.items()}
+    order = sorted(staged_paths, key=lambda fid: (parse_time(starts[fid]), fid))
+
+    run_attrs: dict[str, Any] = {
+        **estimate.to_attrs(),
+        "config_toml": dump_toml(config),
+        "config_sha256": config_sha256(config),
+        "n_inputs": len(inputs),
+    }
+    run_tables: list[xr.Dataset] = [table] if table is not None else []
+    ok_inputs = [s for s in surveys if not s.failure]
+    run_tables.append(xr.Dataset({
+        "input_file": (("input",), np.array([s.path for s in ok_inputs], dtype=str),
+                       {"long_name": "source file (absolute path)"}),
+        "input_sha256": (("input",), np.array([s.sha256 for s in ok_inputs], dtype=str),
+                         {"long_name": "SHA-256 of the source file"}),
+        "input_kind": (("input",), np.array([s.kind for s in ok_inputs], dtype=str)),
+    }))
+
+    # 4. drift
+    drift_model = None
+    run_t0 = starts[order[0]] if order else ""
+    if config.drift.enabled and len(order) >= 2:
+        drift_model, dtab = _drift(executor, order, staged_paths, run_t0, config, emit)
+        if dtab is not None:
+            run_tables.append(dtab)
+            run_attrs.update({k: v for k, v in dtab.attrs.items()})
+    run_attrs.setdefault("drift_velocity_x_m_per_s", np.nan)
+    run_attrs.setdefault("drift_velocity_y_m_per_s", np.nan)
+
+    # 5. finalise: z scale from known steps, drift inside frames
+    z_scale, z_unc = 1.0, 0.0
+    if config.calibrate.known_step_height_m:
+        steps = [(r.step_height_m, r.step_height_uncertainty_m) for r in done
+                 if r.step_height_m]
+        if steps:
+            h, u = np.array(steps, dtype=float).T
+            z_scale, z_unc = z_scale_from_steps(
+                h, u, known_step_height_m=config.calibrate.known_step_height_m)
+            run_attrs.update(z_scale_factor=z_scale, z_scale_factor_uncertainty=z_unc)
+        else:
+            emit(Event("warning", message="no steps measured: z scale not calibrated"))
+    extra = {"work_function_eV": phi}
+    finals: list[str] = []
+    summary.frames = []
+    jobs = [(staged_paths[f], str(store), config, drift_model
+             if config.drift.correct_within_frames else None, run_t0, z_scale, z_unc, extra)
+            for f in order]
+    for res in _pass(executor, "finishing", _finalize, jobs, emit):
+        if res.failure:
+            fail(res.failure)
+        else:
+            finals.append(res.staged)
+            summary.frames.append(res)
+    summary.n_frames = len(finals)
+    summary.n_ok = sum(1 for r in summary.frames if r.status == "ok")
+    summary.n_flagged = sum(1 for r in summary.frames if r.status != "ok")
+    if drift_model is not None:
+        summary.drift_velocity_m_per_s = (float(run_attrs["drift_velocity_x_m_per_s"]),
+                                          float(run_attrs["drift_velocity_y_m_per_s"]))
+    # lateral scale from the atomically resolved frames, measured after the drift correction
+    # (drift shears a frame) and applied to the coordinates as the store is written
+    lateral = None
+    if config.calibrate.lattice_constant_m and finals:
+        lateral = _lateral_scale(executor, finals, config, emit)
+        if lateral is not None:
+            run_attrs.update(lateral)
+            for axis in ("x", "y"):  # the drift was measured in nominal lengths
+                factor = lateral[f"lateral_scale_{axis}"]
+                for name in (f"drift_velocity_{axis}_m_per_s",
+                             f"drift_velocity_uncertainty_{axis}_m_per_s",
+                             f"drift_velocity_{axis}_nm_per_min"):
+                    if name in run_attrs:
+                        run_attrs[name] = float(run_attrs[name]) * factor
+    run_attrs.update(extra_run_attrs)
+
+    # 6. commit
+    emit(Event("pass", name="writing store", total=1))
+    run_ds = xr.merge(run_tables, combine_attrs="drop") if run_tables else xr.Dataset()
+    run_ds.attrs = run_attrs
+    finals_sorted = sorted(finals, key=lambda p: order.index(Path(p).stem))
+    maps = [(f"maps/{s.attrs.get('curve_set_id', Path(s.path).stem)}", s.barrier_map)
+            for s in surveys if s.barrier_map is not None]
+    def final_frames() -> Iterator[xr.Dataset]:
+        for p in finals_sorted:
+            ds = read_staged(p)
+            if lateral is not None:
+                ds = scale_lateral(ds, scale_x=lateral["lateral_scale_x"],
+                                   scale_y=lateral["lateral_scale_y"])
+            yield ds
+
+    write_store(store, frames=final_frames(), run=run_ds,
+                failures=summary.failures, title=config.run.title, extra_groups=maps,
+                history=history or f"isogap process ({datetime.now(UTC):%Y-%m-%d})")
+    emit(Event("advance", name="writing store"))
+
+
+def _finalize(staged: str, store: str, config: Config, drift_model: Any, run_t0: str,
+              z_scale: float, z_unc: float, extra: dict[str, Any]) -> tasks.FrameSummary:
+    return tasks.finalize_frame(staged, store, config=config, drift_model=drift_model,
+                                run_t0=run_t0,
+                                z_scale=z_scale, z_scale_uncertainty=z_unc, extra_attrs=extra)

@@ -1,0 +1,198 @@
+"""Run-level steps between the per-frame passes: work function, drift model, lateral scale.
+
+Each takes the results of a pass (small summaries and staged-file paths), may schedule a pass of
+its own on the executor, and returns what the next pass needs.
+"""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+from pipeline import tasks
+from pipeline.batch.events import Event
+from pipeline.config import Config
+from pipeline.errors import ConfigError, IsogapError
+from pipeline.io.readers import read_file
+from pipeline.io.store import staged_header
+from pipeline.stages.barrier import (
+    WorkFunctionEstimate,
+    combine_fit_tables,
+    estimate_work_function,
+    two_setpoint_work_function,
+)
+from pipeline.stages.drift import (
+    DriftModel,
+    drift_table,
+    fit_drift_series,
+    fit_z_drift,
+    frame_times_s,
+    plan_frame_pairs,
+)
+
+__all__ = ["drift_model", "lateral_scale", "work_function"]
+
+
+def work_function(
+    config: Config, surveys: list[tasks.SurveyResult], emit: Callable[[Event], None],
+) -> tuple[WorkFunctionEstimate, xr.Dataset | None]:
+    """The run's barrier height: from its curves, two setpoints, or the configured value."""
+    b = config.barrier
+    fixed = WorkFunctionEstimate.fixed(b.work_function_eV, b.work_function_uncertainty_eV)
+    if b.source == "fixed":
+        return fixed, None
+    if b.source == "two-setpoint":
+        return _two_setpoint(config, surveys, emit), None
+    tables = [s.curve_table for s in surveys if s.curve_table is not None
+              and (b.grid_curves_in_estimate or s.barrier_map is None)]
+    if not tables:  # a run with only grid curves: use those after all
+        tables = [s.curve_table for s in surveys if s.curve_table is not None]
+    if not tables:
+        emit(Event("warning", message="no approach curves in the run: using the configured "
+                   f"work function {b.work_function_eV} ± {b.work_function_uncertainty_eV} eV"))
+        return WorkFunctionEstimate.fixed(b.work_function_eV, b.work_function_uncertainty_eV,
+                                          note="no approach curves in the run"), None
+    table = combine_fit_tables(tables)
+    try:
+        est = estimate_work_function(table, outlier_threshold_sigma=b.outlier_threshold_sigma)
+    except IsogapError as exc:
+        emit(Event("warning", message=f"work function from the curves failed ({exc}); using "
+                   f"the configured {b.work_function_eV} eV"))
+        return WorkFunctionEstimate.fixed(b.work_function_eV, b.work_function_uncertainty_eV,
+                                          note=f"curves unusable: {exc}"), table
+    for cid, why in est.rejected:
+        emit(Event("warning", message=f"approach curve {cid} rejected: {why}"))
+    return est, est.updated_table(table)
+
+
+def _two_setpoint(
+    config: Config, surveys: list[tasks.SurveyResult], emit: Callable[[Event], None],
+) -> WorkFunctionEstimate:
+    """φ from the first two constant-current frames of one area at different setpoints."""
+    def area(a: dict[str, Any]) -> tuple:
+        return tuple(round(float(a.get(k, 0.0)) * 1e12) for k in (
+            "scan_center_x_m", "scan_center_y_m", "scan_size_x_m", "scan_size_y_m"))
+
+    cc = [s for s in surveys if s.kind == "frame" and not s.failure
+          and s.attrs.get("mode") == "constant-current"]
+    cc.sort(key=lambda s: str(s.attrs.get("start_time")))
+    for a, b in itertools.pairwise(cc):
+        if area(a.attrs) == area(b.attrs) and not np.isclose(
+                float(a.attrs["setpoint_A"]), float(b.attrs["setpoint_A"]), rtol=0.05):
+            pin = config.input.piezo_z_m_per_V
+            try:
+                est = two_setpoint_work_function(read_file(a.path, piezo_z_m_per_V=pin),
+                                                 read_file(b.path, piezo_z_m_per_V=pin))
+            except IsogapError as exc:
+                emit(Event("warning", message=f"setpoint pair {Path(a.path).name}, "
+                           f"{Path(b.path).name} unusable: {exc}"))
+                continue
+            emit(Event("warning", message=f"work function from the setpoint pair "
+                       f"{Path(a.path).name}, {Path(b.path).name}"))
+            return est
+    raise ConfigError("[barrier] source = 'two-setpoint' needs two successive constant-current "
+                      "frames of the same area at different setpoints; the run has none")
+
+
+def lateral_scale(
+    executor: Any, staged: list[str], config: Config, emit: Callable[[Event], None],
+) -> dict[str, Any] | None:
+    """Lateral scale factors from the run's atomically resolved frames (confidence-weighted)."""
+    emit(Event("pass", name="lattice", total=len(staged)))
+    found = []
+    for _, res in executor.map_unordered(tasks.lattice_of_frame,
+                                         [(p, config) for p in staged]):
+        emit(Event("advance", name="lattice"))
+        if res is not None:
+            found.append(res)
+    if not found:
+        emit(Event("warning", message="lateral scale not calibrated: no atomically resolved "
+                   "frame in the run"))
+        return None
+    w = np.array([c.confidence for c in found], dtype=float)
+    sx = np.array([c.scale_x for c in found])
+    sy = np.array([c.scale_y for c in found])
+    skew = np.array([c.skew_deg for c in found])
+
+    def spread(v: np.ndarray) -> float:  # standard error of the mean over frames
+        return float(np.std(v, ddof=1) / np.sqrt(v.size)) if v.size > 1 else float("nan")
+    return {
+        "lateral_scale_x": float(np.average(sx, weights=w)),
+        "lateral_scale_y": float(np.average(sy, weights=w)),
+        "lateral_scale_x_uncertainty": spread(sx),
+        "lateral_scale_y_uncertainty": spread(sy),
+        "lateral_skew_deg": float(np.average(skew, weights=w)),
+        "lateral_calibration_frames": ", ".join(c.frame_id for c in found),
+    }
+
+
+def drift_model(
+    executor: Any, order: list[str], staged: dict[str, str], run_t0: str, config: Config,
+    emit: Callable[[Event], None],
+) -> tuple[DriftModel | None, xr.Dataset | None]:
+    """Register compatible frame pairs (in parallel) and fit the run's drift model."""
+    d = config.drift
+    headers = [staged_header(staged[f]) for f in order]
+    frames = [{**a, "nx": n["x"], "ny": n["y"]} for a, n in headers]
+    # shape-only stand-ins carry what the frame clock needs (sizes + attrs), not the maps
+    stand_ins = [xr.Dataset(coords={"y": np.zeros(n["y"]), "x": np.zeros(n["x"])}, attrs=a)
+                 for a, n in headers]
+    times = np.array([frame_times_s(ds, run_start=run_t0)[1] for ds in stand_ins])
+    pairs = plan_frame_pairs(frames)
+    if not pairs:
+        emit(Event("warning", message="drift not measured: no two frames of the same area and "
+                   "pixel size"))
+        return None, None
+    jobs = [(staged[order[i]], staged[order[j]], config) for i, j in pairs]
+    emit(Event("pass", name="drift", total=len(jobs)))
+    shifts: list[Any] = [None] * len(jobs)
+    updowns = []
+    for k, (shift, updown) in executor.map_unordered(tasks.register_pair, jobs):
+        shifts[k] = shift
+        if updown is not None and updown.confidence >= d.min_confidence:
+            updowns.append(updown)
+        emit(Event("advance", name="drift"))
+    try:
+        model = fit_drift_series(times, shifts, frame_ids=order, min_confidence=d.min_confidence,
+                                 model=d.model, smooth_degree=d.smooth_degree,
+                                 outlier_threshold_sigma=d.outlier_threshold_sigma)
+    except IsogapError as exc:
+        emit(Event("warning", message=f"drift not corrected: {exc}"))
+        return None, None
+    for w in model.warnings:
+        emit(Event("warning", message=f"drift: {w}"))
+    means = np.array([float(a.get("mean_height_before_levelling_m", np.nan)) for a, _ in headers])
+    z_drift = fit_z_drift(times, means) if np.isfinite(means).sum() >= 3 else None
+    starts = np.array([frame_times_s(ds, run_start=run_t0)[0] for ds in stand_ins])
+    table = drift_table(order, times, shifts, model, frame_start_s=starts,
+                        mean_heights_m=means, z_drift=z_drift, run_start=run_t0)
+    if updowns:
+        table.attrs.update(_combine_up_down(updowns, model, emit))
+    return (model if model.is_usable else None), table
+
+
+def _combine_up_down(
+    updowns: list[Any], model: DriftModel, emit: Callable[[Event], None],
+) -> dict[str, Any]:
+    """Inverse-variance mean of the up/down-pair velocities: an independent check of the model
+    (it needs no second frame time, only the shear between opposite slow directions)."""
+    attrs: dict[str, Any] = {"drift_updown_pairs": len(updowns)}
+    for axis in ("x", "y"):
+        v = np.array([getattr(u, f"velocity_{axis}_m_per_s") for u in updowns])
+        s = np.array([getattr(u, f"uncertainty_{axis}_m_per_s") for u in updowns])
+        w = 1.0 / np.maximum(s, 1e-30) ** 2
+        mean, unc = float(np.sum(w * v) / np.sum(w)), float(np.sqrt(1.0 / np.sum(w)))
+        attrs[f"drift_updown_velocity_{axis}_m_per_s"] = mean
+        attrs[f"drift_updown_velocity_uncertainty_{axis}_m_per_s"] = unc
+        fitted = getattr(model, f"velocity_{axis}_m_per_s")
+        fitted_unc = getattr(model, f"velocity_uncertainty_{axis}_m_per_s")
+        if model.is_usable and abs(mean - fitted) > 4 * np.hypot(unc, fitted_unc):
+            emit(Event("warning", message=f"drift: up/down pairs give v_{axis} = "
+                       f"{mean * 6e10:+.3f} nm/min, the frame-to-frame model "
+                       f"{fitted * 6e10:+.3f} nm/min"))
+    return attrs
