@@ -63,19 +63,14 @@ def _setup_logging(verbose: int, quiet: bool) -> None:
 
 def _load_config(path: Path | None, *, workers: int | None = None, executor: str | None = None,
                  scheduler: str | None = None) -> Any:
-    from pipeline.config import load_config, parse_config
+    from pipeline.config import load_config, with_run_overrides
 
-    cfg = load_config(path)
-    run = cfg.run.model_dump()
-    if workers is not None:
-        run["workers"] = workers
-    if executor is not None:
-        run["executor"] = executor
-    if scheduler:
-        run["executor"], run["scheduler_address"] = "dask", scheduler
-    data = cfg.model_dump()
-    data["run"] = run
-    return parse_config(data, source=f"{path or '<defaults>'} + command-line options")
+    return with_run_overrides(load_config(path), workers=workers, executor=executor,
+                              scheduler=scheduler)
+
+
+def _nm_per_min(v_m_per_s: float) -> float:
+    return v_m_per_s * 1e9 * 60.0
 
 
 def _fmt_pm(value: Any) -> str:
@@ -214,7 +209,7 @@ def _print_summary(summary: Any, *, quiet: bool) -> None:
                   f"{summary.work_function_uncertainty_eV:.3f} eV", highlight=False)
         if summary.drift_velocity_m_per_s:
             vx, vy = summary.drift_velocity_m_per_s
-            out.print(f"drift {vx * 6e10:+.3f}, {vy * 6e10:+.3f} nm/min (x, y)",
+            out.print(f"drift {_nm_per_min(vx):+.3f}, {_nm_per_min(vy):+.3f} nm/min (x, y)",
                       highlight=False)
     line = (f"{summary.n_frames} frame(s) in {summary.store}, "
             f"{len(summary.failures)} input(s) failed")
@@ -242,14 +237,15 @@ def show(store: Annotated[Path, typer.Argument(help="an isogap store")]) -> None
                           ("warnings", "right")):
             t.add_column(col, justify=just)  # type: ignore[arg-type]
         for fid in st.frame_ids:
-            a = st.frame(fid).attrs
+            frame = st.frame(fid)
+            a = frame.attrs
             status = str(a.get("status", "?"))
             mode = {"constant-current": "CC", "constant-height": "CH"}.get(
                 str(a.get("mode", "")), "?")
             t.add_row(fid, mode, str(a.get("start_time", "")).replace("T", " ")[:19],
                       status if status == "ok" else f"[yellow]{status}[/]",
                       _fmt_pm(a.get("step_height_m")), _fmt_pm(a.get("Sq_m")),
-                      str(len(get_warnings(st.frame(fid)))))
+                      str(len(get_warnings(frame))))
     except IsogapError as exc:
         raise _fail(str(exc)) from None
     out.print(t)
@@ -261,7 +257,8 @@ def show(store: Annotated[Path, typer.Argument(help="an isogap store")]) -> None
     vx = float(ra.get("drift_velocity_x_m_per_s", float("nan")))
     vy = float(ra.get("drift_velocity_y_m_per_s", float("nan")))
     if vx == vx:
-        out.print(f"drift: {vx * 6e10:+.3f}, {vy * 6e10:+.3f} nm/min (x, y)", highlight=False)
+        out.print(f"drift: {_nm_per_min(vx):+.3f}, {_nm_per_min(vy):+.3f} nm/min (x, y)",
+                  highlight=False)
     if failures:
         out.print(f"[red]{len(failures)} failed input(s):[/]")
         for f in failures:

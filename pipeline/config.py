@@ -1,7 +1,7 @@
 """Configuration schema: one validated table per stage, TOML load/dump, clear errors.
 
 Every key carries its unit in its name. ``configs/default.toml`` is generated from these models
-(``isogap config show --defaults``) so the documented defaults can never drift from the code;
+(``isogap config show``) so the documented defaults can never drift from the code;
 a test checks that the shipped file equals the generated one.
 """
 
@@ -35,6 +35,7 @@ __all__ = [
     "load_config",
     "parse_config",
     "toml_value",
+    "with_run_overrides",
 ]
 
 
@@ -277,6 +278,26 @@ def load_config(path: str | os.PathLike[str] | None = None) -> Config:
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"config {p}: not valid TOML ({exc})") from None
     return parse_config(data, source=str(p))
+
+
+def with_run_overrides(
+    config: Config, *, workers: int | None = None, executor: str | None = None,
+    scheduler: str | None = None,
+) -> Config:
+    """A copy of ``config`` with command-line choices of the ``[run]`` table applied.
+
+    A scheduler address implies the Dask executor. The result is validated like a file.
+    """
+    run = config.run.model_dump()
+    if workers is not None:
+        run["workers"] = workers
+    if executor is not None:
+        run["executor"] = executor
+    if scheduler:
+        run["executor"], run["scheduler_address"] = "dask", scheduler
+    data = config.model_dump()
+    data["run"] = run
+    return parse_config(data, source="command-line options")
 
 
 # --------------------------------------------------------------------------------------------

@@ -15,8 +15,8 @@ from pathlib import Path
 
 from pipeline.batch import Event, RunSummary, own_files, run_batch
 from pipeline.config import Config
-from pipeline.errors import ConfigError
-from pipeline.io.readers import find_inputs
+from pipeline.errors import ConfigError, IsogapError, StoreLockedError
+from pipeline.io.readers import find_inputs, reader_for
 
 __all__ = ["follow_folder", "stable_files"]
 
@@ -43,8 +43,9 @@ def stable_files(
         sig = _signature(p)
         if sig is None or sig[0] == 0:
             continue
-        side = p.with_suffix(".toml")
-        side_sig = _signature(side) if p.suffix.lower() in (".npz", ".txt", ".csv") else None
+        reader = reader_for(p)
+        side_sig = (_signature(p.with_suffix(".toml"))
+                    if getattr(reader, "uses_sidecar", False) else None)
         key_sig = (sig[0] + (side_sig[0] if side_sig else 0),
                    max(sig[1], side_sig[1] if side_sig else 0))
         now[p] = key_sig
@@ -82,13 +83,20 @@ def follow_folder(
                                 exclude=own_files(Path(store)))
             stable, seen = stable_files(found, seen)
             if stable and set(stable) != done:
-                summary = run_batch(run_dir, store, config, inputs=sorted(stable),
-                                    on_event=on_event,
-                                    history=f"isogap process {run_dir} --follow")
-                done = set(stable)
-                code = summary.exit_code
-                if on_summary:
-                    on_summary(summary)
+                try:
+                    summary = run_batch(run_dir, store, config, inputs=sorted(stable),
+                                        on_event=on_event,
+                                        history=f"isogap process {run_dir} --follow")
+                except StoreLockedError:
+                    raise  # another writer: watching on would only fight it
+                except IsogapError as exc:  # e.g. not enough frames yet for a run-level step
+                    if on_event:
+                        on_event(Event("warning", message=f"commit skipped, will retry: {exc}"))
+                else:
+                    done = set(stable)
+                    code = summary.exit_code
+                    if on_summary:
+                        on_summary(summary)
             time.sleep(poll_s)
     except KeyboardInterrupt:
         pass

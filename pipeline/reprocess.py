@@ -8,7 +8,7 @@ from collections.abc import Callable
 from pathlib import Path
 
 from pipeline.batch import Event, RunSummary, run_batch
-from pipeline.config import load_config, parse_config
+from pipeline.config import load_config, parse_config, with_run_overrides
 from pipeline.errors import InputError, StoreError
 from pipeline.io.readers import file_sha256
 from pipeline.io.store import open_store
@@ -36,6 +36,11 @@ def reprocess_store(
         raise StoreError(f"store {store}: records no input list; it cannot be reprocessed")
     files = [str(f) for f in run["input_file"].values]
     hashes = [str(h) for h in run["input_sha256"].values]
+    # inputs that failed last time are tried again (they may have been fixed); no hash to check
+    for f in st.failures():
+        if f.file not in files and Path(f.file).is_file():
+            files.append(f.file)
+            hashes.append("")
     problems = []
     for f, h in zip(files, hashes, strict=True):
         p = Path(f)
@@ -48,12 +53,11 @@ def reprocess_store(
     stored_toml = str(run.attrs.get("config_toml", ""))
     if config_path is not None:
         cfg = load_config(config_path)
+    elif not stored_toml.strip():
+        raise StoreError(f"store {store}: records no config; pass one with --config")
     else:
         cfg = parse_config(tomllib.loads(stored_toml), source=f"{store} (stored config)")
-    if workers is not None:
-        data = cfg.model_dump()
-        data["run"]["workers"] = workers
-        cfg = parse_config(data, source="command-line options")
+    cfg = with_run_overrides(cfg, workers=workers)
     target = Path(out_store) if out_store is not None else Path(store)
     run_dir = Path(files[0]).parent if files else Path(".")
     return run_batch(run_dir, target, cfg, inputs=[Path(f) for f in files],

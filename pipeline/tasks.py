@@ -9,8 +9,10 @@ Scheduling lives in :mod:`pipeline.batch`.
 
 from __future__ import annotations
 
+import math
 import traceback
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -224,9 +226,13 @@ def register_pair(
 ) -> tuple[FrameShift, UpDownDrift | None]:
     """Drift shift between two staged, levelled frames; for a pair of one area scanned in
     opposite slow directions also the drift velocity within one frame time."""
-    a, b = read_staged(previous), read_staged(current)
-    up = config.drift.upsample_factor
-    shift = measure_frame_shift(a, b, upsample_factor=up)
+    try:
+        a, b = read_staged(previous), read_staged(current)
+        up = config.drift.upsample_factor
+        shift = measure_frame_shift(a, b, upsample_factor=up)
+    except IsogapError as exc:  # one pair that cannot be measured is left out, with the reason
+        return FrameShift(Path(previous).stem, Path(current).stem, math.nan, math.nan,
+                          math.inf, math.inf, 0.0, 0.0, reason=str(exc)), None
     updown = None
     same_area = all(np.isclose(float(a.attrs.get(k, 0.0)), float(b.attrs.get(k, 0.0)),
                                rtol=0, atol=1e-12)
@@ -251,14 +257,16 @@ def lattice_of_frame(staged: str, config: Config) -> LatticeCalibration | None:
 
 
 def finalize_frame(
-    staged: str, store: str, *, config: Config, drift_model: DriftModel | None, run_t0: str,
+    staged: str, store: str, config: Config, drift_model: DriftModel | None, run_t0: str,
     z_scale: float, z_scale_uncertainty: float, extra_attrs: dict[str, Any],
 ) -> FrameSummary:
     """Run-level corrections of one staged frame: drift inside it, then the z scale."""
-    ds = read_staged(staged)
-    out = FrameSummary(path=str(ds.attrs.get("source_file", staged)))
-    stage = "correct_drift"
+    out = FrameSummary(path=staged)
+    stage = "read-staged"
     try:
+        ds = read_staged(staged)
+        out.path = str(ds.attrs.get("source_file", staged))
+        stage = "correct_drift"
         if drift_model is not None:
             d = config.drift
             t0 = (parse_time(ds.attrs["start_time"]) - parse_time(run_t0)).total_seconds()

@@ -152,8 +152,20 @@ def _run(
     # duplicate frame ids would overwrite each other's staged result: refuse the later ones
     seen: dict[str, str] = {}
     unique = []
+    zoned = None  # time stamps must all carry a zone or all be local instrument time
     for s in frames:
         fid = str(s.attrs.get("frame_id"))
+        try:
+            has_zone = parse_time(str(s.attrs.get("start_time")), source=s.path).tzinfo is not None
+        except IsogapError as exc:
+            fail(Failure(s.path, "read", str(exc)))
+            continue
+        zoned = has_zone if zoned is None else zoned
+        if has_zone != zoned:
+            fail(Failure(s.path, "read", f"{s.path}: start_time {s.attrs.get('start_time')!r} "
+                         f"{'has' if has_zone else 'lacks'} a time zone, unlike the run's first "
+                         "frame; use one convention for the whole run"))
+            continue
         if fid in seen:
             fail(Failure(s.path, "read", f"{s.path}: frame id {fid!r} is already used by "
                                          f"{seen[fid]}; set a distinct 'frame_id' attribute"))
@@ -226,8 +238,10 @@ def _run(
     # 5. finalise: z scale from known steps, drift inside frames
     z_scale, z_unc = 1.0, 0.0
     if config.calibrate.known_step_height_m:
-        steps = [(r.step_height_m, r.step_height_uncertainty_m) for r in done
-                 if r.step_height_m]
+        # from every frame of the run, recomputed or reused from an earlier run
+        heads = [staged_attrs(staged_paths[f]) for f in order]
+        steps = [(float(a["step_height_m"]), float(a.get("step_height_uncertainty_m", np.nan)))
+                 for a in heads if np.isfinite(float(a.get("step_height_m", np.nan)))]
         if steps:
             h, u = np.array(steps, dtype=float).T
             z_scale, z_unc = z_scale_from_steps(
@@ -241,7 +255,7 @@ def _run(
     jobs = [(staged_paths[f], str(store), config, drift_model
              if config.drift.correct_within_frames else None, run_t0, z_scale, z_unc, extra)
             for f in order]
-    for res in _pass(executor, "finishing", _finalize, jobs, emit):
+    for res in _pass(executor, "finishing", tasks.finalize_frame, jobs, emit):
         if res.failure:
             fail(res.failure)
         else:
@@ -273,9 +287,19 @@ def _run(
     emit(Event("pass", name="writing store", total=1))
     run_ds = xr.merge(run_tables, combine_attrs="drop") if run_tables else xr.Dataset()
     run_ds.attrs = run_attrs
-    finals_sorted = sorted(finals, key=lambda p: order.index(Path(p).stem))
-    maps = [(f"maps/{s.attrs.get('curve_set_id', Path(s.path).stem)}", s.barrier_map)
-            for s in surveys if s.barrier_map is not None]
+    rank = {fid: k for k, fid in enumerate(order)}
+    finals_sorted = sorted(finals, key=lambda p: rank[Path(p).stem])
+    maps: dict[str, xr.Dataset] = {}
+    for s in surveys:
+        if s.barrier_map is None:
+            continue
+        name = f"maps/{s.attrs.get('curve_set_id') or Path(s.path).stem}"
+        if name in maps:
+            emit(Event("warning", message=f"{s.path}: a barrier map named {name!r} exists "
+                       "already; this one is not stored (give the curve set its own "
+                       "'curve_set_id')"))
+            continue
+        maps[name] = s.barrier_map
     def final_frames() -> Iterator[xr.Dataset]:
         for p in finals_sorted:
             ds = read_staged(p)
@@ -285,13 +309,6 @@ def _run(
             yield ds
 
     write_store(store, frames=final_frames(), run=run_ds,
-                failures=summary.failures, title=config.run.title, extra_groups=maps,
+                failures=summary.failures, title=config.run.title, extra_groups=maps.items(),
                 history=history or f"isogap process ({datetime.now(UTC):%Y-%m-%d})")
     emit(Event("advance", name="writing store"))
-
-
-def _finalize(staged: str, store: str, config: Config, drift_model: Any, run_t0: str,
-              z_scale: float, z_unc: float, extra: dict[str, Any]) -> tasks.FrameSummary:
-    return tasks.finalize_frame(staged, store, config=config, drift_model=drift_model,
-                                run_t0=run_t0,
-                                z_scale=z_scale, z_scale_uncertainty=z_unc, extra_attrs=extra)

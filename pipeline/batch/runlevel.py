@@ -20,6 +20,7 @@ from pipeline.config import Config
 from pipeline.errors import ConfigError, IsogapError
 from pipeline.io.readers import read_file
 from pipeline.io.store import staged_header
+from pipeline.model import parse_time
 from pipeline.stages.barrier import (
     WorkFunctionEstimate,
     combine_fit_tables,
@@ -32,6 +33,7 @@ from pipeline.stages.drift import (
     fit_drift_series,
     fit_z_drift,
     frame_times_s,
+    m_per_s_to_nm_per_min,
     plan_frame_pairs,
 )
 
@@ -78,9 +80,16 @@ def _two_setpoint(
         return tuple(round(float(a.get(k, 0.0)) * 1e12) for k in (
             "scan_center_x_m", "scan_center_y_m", "scan_size_x_m", "scan_size_y_m"))
 
-    cc = [s for s in surveys if s.kind == "frame" and not s.failure
-          and s.attrs.get("mode") == "constant-current"]
-    cc.sort(key=lambda s: str(s.attrs.get("start_time")))
+    cc = []
+    for s in surveys:
+        if s.kind == "frame" and not s.failure and s.attrs.get("mode") == "constant-current":
+            try:
+                cc.append((parse_time(str(s.attrs["start_time"])), float(s.attrs["setpoint_A"]),
+                           s))
+            except (KeyError, ValueError, IsogapError):
+                continue  # its own frame task reports what is wrong with it
+    cc.sort(key=lambda t: t[0])
+    cc = [s for _, _, s in cc]
     for a, b in itertools.pairwise(cc):
         if area(a.attrs) == area(b.attrs) and not np.isclose(
                 float(a.attrs["setpoint_A"]), float(b.attrs["setpoint_A"]), rtol=0.05):
@@ -193,6 +202,6 @@ def _combine_up_down(
         fitted_unc = getattr(model, f"velocity_uncertainty_{axis}_m_per_s")
         if model.is_usable and abs(mean - fitted) > 4 * np.hypot(unc, fitted_unc):
             emit(Event("warning", message=f"drift: up/down pairs give v_{axis} = "
-                       f"{mean * 6e10:+.3f} nm/min, the frame-to-frame model "
-                       f"{fitted * 6e10:+.3f} nm/min"))
+                       f"{m_per_s_to_nm_per_min(mean):+.3f} nm/min, the frame-to-frame model "
+                       f"{m_per_s_to_nm_per_min(fitted):+.3f} nm/min"))
     return attrs

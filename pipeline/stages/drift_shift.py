@@ -176,7 +176,8 @@ def measure_frame_shift(
     # covariance: pixels (y, x) -> metres in scan axes (x, y) -> lab axes
     cpx = reg.covariance_px2
     scale = np.diag([gp.px_x, gp.px_y])
-    c_scan = scale @ np.array([[cpx[1, 1], cpx[0, 1]], [cpx[0, 1], cpx[0, 0]]]) @ scale
+    with np.errstate(invalid="ignore", over="ignore"):  # an unbounded covariance stays inf
+        c_scan = scale @ np.array([[cpx[1, 1], cpx[0, 1]], [cpx[0, 1], cpx[0, 0]]]) @ scale
     c, s = math.cos(gp.angle_rad), math.sin(gp.angle_rad)
     rot = np.array([[c, -s], [s, c]])
     c_lab = rot @ c_scan @ rot.T if np.all(np.isfinite(c_scan)) else np.full((2, 2), np.inf)
