@@ -42,12 +42,18 @@ def reprocess_store(
             files.append(f.file)
             hashes.append("")
     problems = []
-    for f, h in zip(files, hashes, strict=True):
+    sides = ([str(h) for h in run["input_sidecar_sha256"].values]
+             if "input_sidecar_sha256" in run else [""] * len(hashes))
+    sides += [""] * (len(files) - len(sides))
+    for f, h, sh in zip(files, hashes, sides, strict=True):
         p = Path(f)
         if not p.is_file():
             problems.append(f"{f}: source file is missing (moved or deleted)")
         elif h and file_sha256(p) != h:
             problems.append(f"{f}: source file changed since the store was made (hash differs)")
+        elif sh and file_sha256(p.with_suffix(".toml")) != sh:
+            problems.append(f"{f}: its sidecar {p.with_suffix('.toml').name} changed since the "
+                            "store was made (hash differs)")
     if problems:
         raise InputError(f"store {store}: cannot reprocess:\n  " + "\n  ".join(problems))
     stored_toml = str(run.attrs.get("config_toml", ""))

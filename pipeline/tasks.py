@@ -60,6 +60,7 @@ class SurveyResult:
     path: str
     kind: str = ""  # "frame" or "curve"
     sha256: str = ""
+    sidecar_sha256: str = ""
     attrs: dict[str, Any] = field(default_factory=dict)
     curve_table: xr.Dataset | None = None
     barrier_map: xr.Dataset | None = None
@@ -104,6 +105,7 @@ def survey_file(path: str, config: Config) -> SurveyResult:
     if header is not None and header["kind"] == "frame":
         # a frame is read (and validated) once, by its own task: its header is enough here
         res.kind, res.sha256 = "frame", str(header["source_sha256"])
+        res.sidecar_sha256 = str(header.get("source_sidecar_sha256", ""))
         res.attrs = {k: v for k, v in header.items() if isinstance(v, str | int | float)}
         return res
     try:
@@ -113,6 +115,7 @@ def survey_file(path: str, config: Config) -> SurveyResult:
         return res
     res.kind = str(ds.attrs["kind"])
     res.sha256 = str(ds.attrs.get("source_sha256", ""))
+    res.sidecar_sha256 = str(ds.attrs.get("source_sidecar_sha256", ""))
     res.attrs = {k: v for k, v in ds.attrs.items() if isinstance(v, str | int | float)}
     if res.kind == "curve":
         try:

@@ -137,3 +137,35 @@ def test_duplicate_frame_ids_second_is_a_failure(run_copy, serial_config, tmp_pa
     summary = run_batch(run_copy, tmp_path / "s.h5", cfg)
     msgs = [f.message for f in summary.failures]
     assert any("is already used by" in m for m in msgs), msgs
+
+
+def test_edited_sidecar_is_recomputed_and_resume_keeps_z_calibration(run_copy, tmp_path):
+    cfg = parse_config({"run": {"executor": "serial"},
+                        "calibrate": {"known_step_height_m": 2.3544e-10}})
+    store = tmp_path / "s.h5"
+    run_batch(run_copy, store, cfg)
+    first = open_store(store).run().attrs["z_scale_factor"]
+    side = next(run_copy.glob("frame_*.toml"))
+    side.write_text(side.read_text() + "\n# edited by the operator\n")
+    again = run_batch(run_copy, store, cfg)
+    # the frame whose sidecar changed is recomputed, the others are reused
+    assert again.n_reused == again.n_frames - 1
+    # a resumed run still calibrates z from the steps of reused frames
+    assert open_store(store).run().attrs["z_scale_factor"] == pytest.approx(first, rel=1e-9)
+
+
+def test_mixed_time_zones_fail_the_odd_frame_only(run_copy, serial_config, tmp_path):
+    import xarray as xr
+
+    from pipeline.io.writers import write_raw_netcdf
+
+    victim = sorted(run_copy.glob("frame_*.nc"))[0]
+    with xr.open_dataset(victim, engine="h5netcdf") as ds:
+        ds = ds.load()
+    ds.attrs["start_time"] = ds.attrs["start_time"] + "+00:00"
+    victim.unlink()
+    write_raw_netcdf(ds, victim)
+    summary = run_batch(run_copy, tmp_path / "s.h5", serial_config)
+    msgs = [f.message for f in summary.failures]
+    assert any("time zone, unlike the other frames" in m for m in msgs), msgs
+    assert summary.n_frames == len(list((run_copy / "truth").glob("*.nc"))) - 1

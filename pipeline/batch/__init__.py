@@ -150,21 +150,26 @@ def _run(
     summary.n_curves_files = sum(1 for s in surveys if s.kind == "curve")
 
     # duplicate frame ids would overwrite each other's staged result: refuse the later ones
-    seen: dict[str, str] = {}
-    unique = []
-    zoned = None  # time stamps must all carry a zone or all be local instrument time
+    # time stamps must all carry a zone or all be local instrument time: the few that differ
+    # from the rest cannot be placed on the run's clock
+    zones: dict[str, bool] = {}
     for s in frames:
-        fid = str(s.attrs.get("frame_id"))
         try:
-            has_zone = parse_time(str(s.attrs.get("start_time")), source=s.path).tzinfo is not None
+            zones[s.path] = parse_time(str(s.attrs.get("start_time")),
+                                       source=s.path).tzinfo is not None
         except IsogapError as exc:
             fail(Failure(s.path, "read", str(exc)))
+    zoned = sum(zones.values()) > len(zones) / 2
+    seen: dict[str, str] = {}
+    unique = []
+    for s in frames:
+        fid = str(s.attrs.get("frame_id"))
+        if s.path not in zones:
             continue
-        zoned = has_zone if zoned is None else zoned
-        if has_zone != zoned:
+        if zones[s.path] != zoned:
             fail(Failure(s.path, "read", f"{s.path}: start_time {s.attrs.get('start_time')!r} "
-                         f"{'has' if has_zone else 'lacks'} a time zone, unlike the run's first "
-                         "frame; use one convention for the whole run"))
+                         f"{'has' if zones[s.path] else 'lacks'} a time zone, unlike the other "
+                         "frames of the run; use one convention for the whole run"))
             continue
         if fid in seen:
             fail(Failure(s.path, "read", f"{s.path}: frame id {fid!r} is already used by "
@@ -191,7 +196,8 @@ def _run(
                 a = staged_attrs(old)
             except IsogapError:
                 a = {}
-            if a.get("source_sha256") == s.sha256 and a.get("run_key") == run_key:
+            if (a.get("source_sha256") == s.sha256 and a.get("run_key") == run_key
+                    and str(a.get("source_sidecar_sha256", "")) == s.sidecar_sha256):
                 reused.append(str(old))
                 continue
         todo.append(s)
@@ -221,6 +227,9 @@ def _run(
                        {"long_name": "source file (absolute path)"}),
         "input_sha256": (("input",), np.array([s.sha256 for s in ok_inputs], dtype=str),
                          {"long_name": "SHA-256 of the source file"}),
+        "input_sidecar_sha256": (("input",), np.array([s.sidecar_sha256 for s in ok_inputs],
+                                                       dtype=str),
+                                 {"long_name": "SHA-256 of the TOML sidecar (sidecar formats)"}),
         "input_kind": (("input",), np.array([s.kind for s in ok_inputs], dtype=str)),
     }))
 

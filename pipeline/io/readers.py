@@ -356,9 +356,9 @@ def read_file(path: str | os.PathLike[str], *,
         ``kind = "frame"``: the output of :func:`pipeline.model.validate_raw_frame` (z in m,
         currents in A, ``warnings`` listing unrecorded pixels). ``kind = "curve"``: the output
         of :func:`pipeline.model.validate_curves` (dims ``curve, sample``). Both carry
-        ``source_file`` (absolute path), ``source_sha256`` (of the data file itself) and
-        ``source_stem``; frames also ``frame_id`` (the file's own, else the file stem;
-        sanitised).
+        ``source_file`` (absolute path), ``source_sha256`` (of the data file itself),
+        ``source_sidecar_sha256`` (sidecar formats) and ``source_stem``; frames also
+        ``frame_id`` (the file's own, else the file stem; sanitised).
 
     Raises
     ------
@@ -395,7 +395,7 @@ def read_file(path: str | os.PathLike[str], *,
                 f"{src}: attribute 'kind' = {kind!r}; expected {' or '.join(map(repr, KINDS))}")
         _check_variables(ds, kind, src)
         ds.attrs["source_file"] = src
-        ds.attrs["source_sha256"] = file_sha256(p)
+        ds.attrs.update(_source_hashes(p))
         ds.attrs["source_stem"] = p.stem
         if kind == "frame":
             ds.attrs["frame_id"] = sanitize_id(ds.attrs.get("frame_id") or p.stem)
@@ -414,6 +414,16 @@ def read_file(path: str | os.PathLike[str], *,
     except (TypeError, ValueError) as exc:
         raise UnreadableFileError(
             f"{src}: contents cannot be interpreted ({type(exc).__name__}: {exc})") from exc
+
+
+def _source_hashes(path: Path) -> dict[str, str]:
+    """``source_sha256`` of the data file itself and, for sidecar formats, the sidecar's hash
+    (an edited sidecar changes the data as much as an edited array does)."""
+    out = {"source_sha256": file_sha256(path)}
+    side = path.with_suffix(SIDECAR_SUFFIX)
+    if getattr(reader_for(path), "uses_sidecar", False) and side.is_file():
+        out["source_sidecar_sha256"] = file_sha256(side)
+    return out
 
 
 def read_header(path: str | os.PathLike[str]) -> dict[str, Any] | None:
@@ -445,7 +455,7 @@ def read_header(path: str | os.PathLike[str]) -> dict[str, Any] | None:
     if attrs.get("kind") not in KINDS:
         return None
     attrs["source_file"] = src
-    attrs["source_sha256"] = file_sha256(p)
+    attrs.update(_source_hashes(p))
     attrs["source_stem"] = p.stem
     if attrs["kind"] == "frame":
         attrs["frame_id"] = sanitize_id(attrs.get("frame_id") or p.stem)

@@ -9,20 +9,22 @@ Layout of a store file (netCDF4-compatible; every group opens with
     /failures         one record per input that could not be processed
 
 Crash safety (DESIGN.md §7): each processed frame is first *staged* as its own small netCDF file
-in ``<store>.parts/frames/`` (written under a temporary name and ``os.replace``-d into place), so a
-killed run keeps every finished frame. The store itself is always built under a temporary name
-through one open ``h5netcdf.File`` handle and then atomically replaces the previous store, so a
-crash at any moment leaves the previous store intact. A lock file ``<store>.lock`` names the
-holder (pid, host, start time) and refuses a second writer.
+in ``<store>.parts/frames/`` (written under a temporary name, fsynced and ``os.replace``-d into
+place), so a killed run keeps every finished frame. The store itself is always built under a
+temporary name through one open ``h5netcdf.File`` handle and then atomically replaces the
+previous store, so a crash at any moment leaves the previous store intact. An ``flock`` on
+``<store>.lock`` refuses a second writer; the file names the holder (pid, host, start time).
 """
 
 from __future__ import annotations
 
+import fcntl
 import json
 import os
 import shutil
 import socket
 import tempfile
+import uuid
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -120,65 +122,55 @@ def netcdf_safe(ds: xr.Dataset) -> xr.Dataset:
 # --------------------------------------------------------------------------------------------
 
 
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
 class StoreLock:
-    """Exclusive write lock on a store, held through a lock file that names its holder.
+    """Exclusive write lock on a store: an ``flock`` on ``<store>.lock``, which names its holder.
 
-    A lock left by a process that no longer exists (same host) is taken over; a live holder makes
-    :class:`~pipeline.errors.StoreLockedError` with its pid, host and start time.
+    The operating system releases the lock when its process dies, however it dies, so a lock of
+    a killed run never blocks the next one; the JSON in the file (pid, host, start time) only
+    names the holder for the message of :class:`~pipeline.errors.StoreLockedError`. The file is
+    left in place (empty) on release: removing it would let two later writers lock two
+    different files of the same name.
     """
 
     def __init__(self, store: str | os.PathLike[str]):
         self.store = Path(store)
         self.path = self.store.with_name(self.store.name + ".lock")
-        self._held = False
+        self._fd: int | None = None
 
     def _holder(self) -> dict[str, Any]:
         try:
-            return json.loads(self.path.read_text())
+            return json.loads(self.path.read_text() or "{}")
         except (OSError, ValueError):
             return {}
 
     def acquire(self) -> StoreLock:
+        try:
+            fd = os.open(self.path, os.O_CREAT | os.O_RDWR, 0o644)
+        except OSError as exc:
+            raise StoreError(f"store {self.store}: cannot create lock file {self.path} "
+                             f"({exc.strerror})") from None
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            os.close(fd)
+            holder = self._holder()
+            raise StoreLockedError(
+                f"store {self.store}: another isogap process is writing it (pid "
+                f"{holder.get('pid', '?')} on {holder.get('host', '?')}, since "
+                f"{holder.get('started', '?')}); wait for it to finish") from None
         info = {"pid": os.getpid(), "host": socket.gethostname(),
                 "started": datetime.now(UTC).isoformat(timespec="seconds")}
-        for _ in range(2):
-            try:
-                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
-            except FileExistsError:
-                holder = self._holder()
-                same_host = holder.get("host") == socket.gethostname()
-                pid = int(holder.get("pid", -1) or -1)
-                if same_host and pid > 0 and not _pid_alive(pid):
-                    self.path.unlink(missing_ok=True)  # stale lock of a dead process
-                    continue
-                raise StoreLockedError(
-                    f"store {self.store}: another isogap process is writing it (pid "
-                    f"{holder.get('pid', '?')} on {holder.get('host', '?')}, since "
-                    f"{holder.get('started', '?')}); wait for it to finish, or remove "
-                    f"{self.path} if that process is gone") from None
-            except OSError as exc:
-                raise StoreError(f"store {self.store}: cannot create lock file {self.path} "
-                                 f"({exc.strerror})") from None
-            with os.fdopen(fd, "w") as fh:
-                json.dump(info, fh)
-            self._held = True
-            return self
-        raise StoreLockedError(f"store {self.store}: could not take the lock {self.path}")
+        os.ftruncate(fd, 0)
+        os.write(fd, json.dumps(info).encode())
+        self._fd = fd
+        return self
 
     def release(self) -> None:
-        if self._held:
-            self.path.unlink(missing_ok=True)
-            self._held = False
+        if self._fd is not None:
+            os.ftruncate(self._fd, 0)
+            fcntl.flock(self._fd, fcntl.LOCK_UN)
+            os.close(self._fd)
+            self._fd = None
 
     def __enter__(self) -> StoreLock:
         return self.acquire()
@@ -224,12 +216,29 @@ def staging_dir(store: str | os.PathLike[str]) -> Path:
     return store.with_name(store.name + ".parts")
 
 
+def _fsync_replace(tmp: Path, path: Path) -> None:
+    """Make ``tmp`` durable, rename it to ``path``, and make the rename durable too."""
+    with open(tmp, "rb+") as fh:
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+    dir_fd = os.open(path.parent, os.O_RDONLY)
+    try:
+        os.fsync(dir_fd)
+    finally:
+        os.close(dir_fd)
+
+
+def _temporary(path: Path) -> Path:
+    """A hidden temporary name beside ``path``, unique across processes and hosts."""
+    return path.with_name(f".{path.name}.{uuid.uuid4().hex[:12]}.tmp")
+
+
 def _atomic_netcdf(ds: xr.Dataset, path: Path) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    tmp = _temporary(path)
     try:
         netcdf_safe(ds).to_netcdf(tmp, engine="h5netcdf")
-        os.replace(tmp, path)
+        _fsync_replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
@@ -313,7 +322,7 @@ def write_store(
     are further ``(group path, dataset)`` pairs, e.g. ``("maps/grid1", ds)``.
     """
     path = Path(path)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    tmp = _temporary(path)
     now = datetime.now(UTC).isoformat(timespec="seconds")
     try:
         with h5netcdf.File(tmp, "w") as handle:
@@ -339,7 +348,7 @@ def write_store(
                     handle.create_group(parts[0])
                 _dump_group(handle, "/".join(parts), ds)
             _dump_group(handle, "failures", _failures_dataset(failures))
-        os.replace(tmp, path)
+        _fsync_replace(tmp, path)
     except OSError as exc:  # e.g. a full disk: the previous store is still in place
         tmp.unlink(missing_ok=True)
         raise StoreError(f"store {path}: cannot be written ({exc.strerror or exc}); the "

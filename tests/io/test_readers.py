@@ -104,6 +104,9 @@ def expected(ds: xr.Dataset, path: Path) -> xr.Dataset:
     src = str(path.absolute())
     a = dict(ds.attrs, source_file=src, source_sha256=hashlib.sha256(path.read_bytes()).hexdigest(),
              source_stem=path.stem, frame_id=path.stem)
+    side = path.with_suffix(".toml")
+    if side.is_file():  # sidecar formats: the sidecar's own hash (an edit changes the data)
+        a["source_sidecar_sha256"] = hashlib.sha256(side.read_bytes()).hexdigest()
     return validate_raw_frame(ds.assign_attrs(a), source=src)
 
 

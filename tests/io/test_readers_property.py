@@ -59,8 +59,12 @@ def frames(draw: st.DrawFn) -> xr.Dataset:
 
 
 def _provenance(ds: xr.Dataset, path: Path) -> xr.Dataset:
-    return ds.assign_attrs(source_file=str(path.absolute()), source_stem=path.stem,
-                           source_sha256=hashlib.sha256(path.read_bytes()).hexdigest())
+    out = ds.assign_attrs(source_file=str(path.absolute()), source_stem=path.stem,
+                          source_sha256=hashlib.sha256(path.read_bytes()).hexdigest())
+    side = path.with_suffix(".toml")
+    if side.is_file():
+        out.attrs["source_sidecar_sha256"] = hashlib.sha256(side.read_bytes()).hexdigest()
+    return out
 
 
 @pytest.mark.parametrize("fmt", ["nc", "npz", "csv"])

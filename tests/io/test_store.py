@@ -118,6 +118,24 @@ def test_stale_lock_of_dead_process_is_taken_over(tmp_path):
         assert json.loads(lock.read_text())["pid"] == os.getpid()
 
 
+def test_lock_of_a_killed_holder_is_released_by_the_os(tmp_path):
+    import signal
+    import time
+
+    store = tmp_path / "s.h5"
+    code = ("import sys, time; from pipeline.io.store import StoreLock; "
+            f"StoreLock({str(store)!r}).acquire(); print('locked', flush=True); time.sleep(60)")
+    proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)
+    assert proc.stdout.readline().strip() == "locked"
+    with pytest.raises(StoreLockedError, match=rf"pid {proc.pid} on"):
+        StoreLock(store).acquire()
+    proc.send_signal(signal.SIGKILL)
+    proc.wait()
+    proc.stdout.close()
+    time.sleep(0.1)
+    StoreLock(store).acquire().release()  # no stale lock to clean up by hand
+
+
 def test_check_writable_errors(tmp_path):
     with pytest.raises(StoreError, match="does not exist"):
         check_writable(tmp_path / "nope" / "s.h5")
