@@ -3,7 +3,7 @@
 The public Python API, for scripts and notebooks::
 
     import pipeline
-    raw = pipeline.load("sample_scans/night-01/cc-001.nc")      # one raw frame or curve set
+    raw = pipeline.load("sample_scans/night-01/frame_001.nc")      # one raw frame or curve set
     summary = pipeline.process("sample_scans/night-01", "night-01.h5")
     store = pipeline.open_store("night-01.h5")
     frame = store.frame(store.frame_ids[0])                       # an xarray.Dataset, SI units

@@ -199,9 +199,11 @@ class _Progress:
 def _print_summary(summary: Any, *, quiet: bool) -> None:
     if not quiet:
         t = Table(title=f"run summary — {summary.store}", show_header=True)
-        for col in ("inputs", "frames", "ok", "flagged", "failed", "reused", "time"):
+        for col in ("inputs", "curve files", "frames", "ok", "flagged", "failed", "reused",
+                    "time"):
             t.add_column(col, justify="right")
-        t.add_row(str(summary.n_inputs), str(summary.n_frames), str(summary.n_ok),
+        t.add_row(str(summary.n_inputs), str(summary.n_curves_files), str(summary.n_frames),
+                  str(summary.n_ok),
                   str(summary.n_flagged), str(len(summary.failures)), str(summary.n_reused),
                   f"{summary.seconds:.1f} s")
         out.print(t)

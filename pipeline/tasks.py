@@ -22,7 +22,7 @@ from pipeline.config import Config
 from pipeline.errors import IsogapError
 from pipeline.io.readers import read_file, read_header
 from pipeline.io.store import Failure, read_staged, write_staged
-from pipeline.model import BAD_PIXELS, get_warnings, parse_time
+from pipeline.model import BAD_PIXELS, parse_time
 from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, apparent_barrier_map, fit_curves
 from pipeline.stages.calibrate import (
     LatticeCalibration,
@@ -77,10 +77,8 @@ class FrameSummary:
     staged: str = ""
     status: str = ""
     start_time: str = ""
-    mean_height_m: float = float("nan")
     step_height_m: float | None = None
     step_height_uncertainty_m: float | None = None
-    n_warnings: int = 0
     failure: Failure | None = None
 
 
@@ -217,11 +215,9 @@ def _summarise(ds: xr.Dataset, out: FrameSummary) -> None:
     out.frame_id = str(ds.attrs["frame_id"])
     out.status = str(ds.attrs.get("status", "ok"))
     out.start_time = str(ds.attrs["start_time"])
-    out.mean_height_m = _valid_mean(ds)
     if "step_height_m" in ds.attrs:
         out.step_height_m = float(ds.attrs["step_height_m"])
         out.step_height_uncertainty_m = float(ds.attrs.get("step_height_uncertainty_m", np.nan))
-    out.n_warnings = len(get_warnings(ds))
 
 
 def register_pair(

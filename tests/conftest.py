@@ -36,6 +36,18 @@ def serial_config() -> Config:
 
 
 @pytest.fixture(scope="session")
+def heights():
+    """A function: store path → {frame id: height map} (for comparing runs)."""
+    from pipeline.io.store import open_store
+
+    def read(store: Path) -> dict:
+        st = open_store(store)
+        return {fid: st.frame(fid)["height"].values for fid in st.frame_ids}
+
+    return read
+
+
+@pytest.fixture(scope="session")
 def tiny_store(tiny_run: Path, tmp_path_factory: pytest.TempPathFactory, serial_config: Config):
     """The tiny run processed once with the serial executor: (store path, summary)."""
     from pipeline.batch import run_batch
@@ -54,9 +66,11 @@ def sample_calibrated(tmp_path_factory: pytest.TempPathFactory):
     import tomllib
 
     from pipeline.batch import run_batch
-    from pipeline.config import load_config
+    from pipeline.config import load_config, with_run_overrides
 
-    cfg = load_config(ROOT / "configs" / "au111-calibrated.toml")
+    # serial: warnings raised inside stages reach pytest's filter (workers would hide them)
+    cfg = with_run_overrides(load_config(ROOT / "configs" / "au111-calibrated.toml"),
+                             executor="serial")
     store = tmp_path_factory.mktemp("sample") / "night-01.h5"
     summary = run_batch(ROOT / "sample_scans" / "night-01", store, cfg)
     truth = tomllib.loads((ROOT / "sample_scans" / "night-01" / "truth" / "run.toml").read_text())

@@ -22,10 +22,6 @@ RUN_ATTRS = ("work_function_eV", "work_function_uncertainty_eV", "barrier_method
              "config_sha256")
 
 
-def _heights(store: Path) -> dict[str, np.ndarray]:
-    st = open_store(store)
-    return {fid: st.frame(fid)["height"].values for fid in st.frame_ids}
-
 
 def test_store_contract_end_to_end(tiny_run, tiny_store):
     store, summary = tiny_store
@@ -33,8 +29,13 @@ def test_store_contract_end_to_end(tiny_run, tiny_store):
     n_frames = sum(1 for p in (tiny_run / "truth").glob("*.nc"))
     assert summary.n_frames == n_frames > 0
     root = xr.open_dataset(store, engine="h5netcdf")
-    assert root.attrs["Conventions"] == "CF-1.10"
+    assert root.attrs["Conventions"] == "CF-1.10"  # DESIGN.md §4 root attributes
+    for key in ("title", "software", "created", "history"):
+        assert root.attrs[key], key
+    failures = xr.open_dataset(store, group="failures", engine="h5netcdf")
+    assert failures.sizes.get("failure", 0) == 0
     st = open_store(store)
+    n_terraced = 0
     for fid in st.frame_ids:
         ds = xr.open_dataset(store, group=f"frames/{fid}", engine="h5netcdf")
         assert ds["height"].attrs["units"] == "m"
@@ -44,9 +45,15 @@ def test_store_contract_end_to_end(tiny_run, tiny_store):
         for key in FRAME_ATTRS:
             assert key in ds.attrs, (fid, key)
         assert ds.attrs["status"] in ("ok", "flagged")
+        assert ds["height_uncertainty"].attrs["units"] == "m"
+        assert list(ds["flags"].attrs["flag_masks"]) == [1, 2, 4, 8, 16, 32, 64, 128]
+        if "step_height_m" in ds.attrs:
+            n_terraced += 1
+            assert 0 < ds.attrs["step_height_uncertainty_m"] < ds.attrs["step_height_m"]
         history = json.loads(ds.attrs["processing_history"])
         assert history[0]["stage"] == "reconstruct_height"
         assert len(ds.attrs["source_sha256"]) == 64
+    assert n_terraced >= 2  # the tiny run's constant-current frames cross steps
     run = xr.open_dataset(store, group="run", engine="h5netcdf")
     for key in RUN_ATTRS:
         assert key in run.attrs, key
@@ -72,19 +79,19 @@ def test_bad_files_are_recorded_and_good_ones_finish(run_copy, serial_config, tm
     summary = run_batch(run_copy, store, serial_config)
     assert summary.exit_code == 1
     failed = {Path(f.file).name for f in open_store(store).failures()}
-    assert {"truncated.nc", "garbage.nc"} <= failed
+    assert {"truncated.nc", "garbage.nc", "orphan.toml"} <= failed
     assert summary.n_frames == len(list((run_copy / "truth").glob("*.nc")))
     for f in open_store(store).failures():
         assert Path(f.file).name in f.message  # each message names its file
 
 
-def test_rerun_resumes_and_changed_config_recomputes(run_copy, serial_config, tmp_path):
+def test_rerun_resumes_and_changed_config_recomputes(run_copy, serial_config, tmp_path, heights):
     store = tmp_path / "s.h5"
     first = run_batch(run_copy, store, serial_config)
-    h1 = _heights(store)
+    h1 = heights(store)
     again = run_batch(run_copy, store, serial_config)
     assert again.n_reused == first.n_frames
-    h2 = _heights(store)
+    h2 = heights(store)
     assert h1.keys() == h2.keys()
     for k in h1:
         np.testing.assert_array_equal(h1[k], h2[k])
@@ -93,19 +100,19 @@ def test_rerun_resumes_and_changed_config_recomputes(run_copy, serial_config, tm
     assert third.n_reused == 0
 
 
-def test_process_pool_matches_serial(tiny_run, tiny_store, tmp_path):
+def test_process_pool_matches_serial(tiny_run, tiny_store, tmp_path, heights):
     store, _ = tiny_store
     cfg = parse_config({"run": {"executor": "processes", "workers": 2}})
     other = tmp_path / "p.h5"
     run_batch(tiny_run, other, cfg)
-    a, b = _heights(store), _heights(other)
+    a, b = heights(store), heights(other)
     assert a.keys() == b.keys()
     for k in a:
         np.testing.assert_array_equal(a[k], b[k])
 
 
 @pytest.mark.slow
-def test_dask_local_cluster_matches_serial(tiny_run, tiny_store, tmp_path):
+def test_dask_local_cluster_matches_serial(tiny_run, tiny_store, tmp_path, heights):
     distributed = pytest.importorskip("distributed")
     store, _ = tiny_store
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
@@ -115,7 +122,7 @@ def test_dask_local_cluster_matches_serial(tiny_run, tiny_store, tmp_path):
         other = tmp_path / "d.h5"
         summary = run_batch(tiny_run, other, cfg)
     assert summary.exit_code == 0
-    a, b = _heights(store), _heights(other)
+    a, b = heights(store), heights(other)
     assert a.keys() == b.keys()
     for k in a:
         np.testing.assert_array_equal(a[k], b[k])

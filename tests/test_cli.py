@@ -103,7 +103,7 @@ def test_config_show_and_check(tmp_path):
     r = invoke("config", "check", bad)
     assert r.exit_code == 2 and "drift.upsample_factor" in r.output
     r = invoke("config", "show", bad)
-    assert r.exit_code == 2
+    assert r.exit_code == 2 and "greater than or equal to 1" in r.output
     r = invoke("config", "check", tmp_path / "missing.toml")
     assert r.exit_code == 2 and "file not found" in r.output
 
@@ -113,7 +113,7 @@ def test_simulate_refuses_non_empty_folder_and_unknown_preset(tmp_path):
     out.mkdir()
     (out / "keep.txt").write_text("x")
     r = invoke("simulate", out, "--preset", "tiny", "--seed", "1")
-    assert r.exit_code == 2
+    assert r.exit_code == 2 and "exists and is not empty" in r.output
     r = invoke("simulate", tmp_path / "sim2", "--preset", "no-such-preset")
     assert r.exit_code == 2 and "no-such-preset" in r.output
 
@@ -137,7 +137,7 @@ def test_barrier_on_curve_files_and_errors(tiny_run, tmp_path):
     r = invoke("barrier", frames[0])
     assert r.exit_code == 2 and "not approach curves" in r.output
     r = invoke("barrier", tmp_path / "missing.nc")
-    assert r.exit_code == 2
+    assert r.exit_code == 2 and "missing.nc: file not found" in r.output
 
 
 def test_report_and_export_errors(tiny_store, tmp_path):
@@ -148,6 +148,7 @@ def test_report_and_export_errors(tiny_store, tmp_path):
     assert (out / "index.html").is_file()
     r = invoke("report", store, "--out", out)
     assert r.exit_code == 2  # existing report is not overwritten without --overwrite
+    assert "--overwrite" in r.output or "overwrite" in r.output
     r = invoke("report", store, "--out", out, "--overwrite")
     assert r.exit_code == 0
     r = invoke("export", store, "--to", tmp_path / "ex", "--format", "bmp")
@@ -158,6 +159,7 @@ def test_report_and_export_errors(tiny_store, tmp_path):
     assert r.exit_code == 0, r.output
     r = invoke("export", store, "--to", tmp_path / "ex", "--format", "npy")
     assert r.exit_code == 2  # files exist: refused without --overwrite
+    assert "exist" in r.output and "overwrite" in r.output
 
 
 def test_reprocess_moved_source_exits_2(run_copy, tmp_path, serial_toml):

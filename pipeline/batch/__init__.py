@@ -7,7 +7,10 @@ The passes of a run, each a set of independent tasks carrying file paths (DESIGN
 3. **frames**: height → levelling → quality, each result staged as its own file;
 4. **drift**: consecutive staged frames registered pairwise, a drift model fitted;
 5. **finalise**: drift corrected inside each frame, z scale from known steps applied;
-6. **commit**: the store rebuilt from the staged files through one handle, replaced atomically.
+6. **lattice** (when a lattice constant is configured): lateral scale from the atomically
+   resolved, drift-corrected frames;
+7. **commit**: the store rebuilt from the staged files through one handle (lateral scale
+   applied to the coordinates on the way), replaced atomically.
 
 Workers read their own input and return small summaries; only this process writes the store.
 Memory therefore depends on frame size × workers, not on the length of the run. Staged results

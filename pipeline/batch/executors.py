@@ -1,7 +1,9 @@
 """Executors: one interface (``map_unordered``), three back ends (serial, processes, Dask).
 
-``map_unordered(fn, jobs)`` yields ``(index, result)`` as tasks finish, keeping only a few tasks
-in flight per worker, so results stream and memory stays flat.
+``map_unordered(fn, jobs)`` yields ``(index, result)`` as tasks finish. Local processes keep at
+most two tasks in flight per worker; Dask gets all tasks at once (its scheduler balances them)
+and each result is released as soon as it has been taken, so results stream and memory stays
+flat on both.
 """
 
 from __future__ import annotations
