@@ -35,7 +35,7 @@ import xarray as xr
 
 from pipeline import tasks
 from pipeline._version import __version__
-from pipeline.batch.events import Event, RunSummary
+from pipeline.batch.events import Event, RunSummary, run_pass
 from pipeline.batch.executors import make_executor
 from pipeline.batch.runlevel import drift_model as _drift
 from pipeline.batch.runlevel import lateral_scale as _lateral_scale
@@ -73,16 +73,6 @@ def _run_key(config: Config, phi: float, phi_unc: float) -> str:
     relevant["work_function"] = [round(phi, 9), round(phi_unc, 9)]
     relevant["software"] = __version__  # a new release recomputes; stage versions live in it
     return hashlib.sha256(json.dumps(relevant, sort_keys=True).encode()).hexdigest()[:16]
-
-
-def _pass(
-    executor: Any, name: str, fn: Callable[..., Any], jobs: list[tuple],
-    emit: Callable[[Event], None],
-) -> Iterator[Any]:
-    emit(Event("pass", name=name, total=len(jobs)))
-    for _, res in executor.map_unordered(fn, jobs):
-        emit(Event("advance", name=name))
-        yield res
 
 
 def run_batch(
@@ -141,7 +131,7 @@ def _run(
 
     # 1. survey
     surveys: list[tasks.SurveyResult] = []
-    for res in _pass(executor, "reading", tasks.survey_file,
+    for _, res in run_pass(executor, "reading", tasks.survey_file,
                      [(str(p), config) for p in inputs], emit):
         if res.failure:
             fail(res.failure)
@@ -206,7 +196,7 @@ def _run(
         todo.append(s)
     summary.n_reused = len(reused)
     done: list[tasks.FrameSummary] = []
-    for res in _pass(executor, "frames", tasks.process_frame,
+    for _, res in run_pass(executor, "frames", tasks.process_frame,
                      [(s.path, str(store), config, phi, phi_unc, run_key) for s in todo], emit):
         if res.failure:
             fail(res.failure)
@@ -267,7 +257,7 @@ def _run(
     jobs = [(staged_paths[f], str(store), config, drift_model
              if config.drift.correct_within_frames else None, run_t0, z_scale, z_unc, extra)
             for f in order]
-    for res in _pass(executor, "finishing", tasks.finalize_frame, jobs, emit):
+    for _, res in run_pass(executor, "finishing", tasks.finalize_frame, jobs, emit):
         if res.failure:
             fail(res.failure)
         else:

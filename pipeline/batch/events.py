@@ -2,13 +2,15 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 from pipeline import tasks
 from pipeline.io.store import Failure
 
-__all__ = ["Event", "RunSummary"]
+__all__ = ["Event", "RunSummary", "run_pass"]
 
 
 @dataclass(frozen=True)
@@ -43,3 +45,17 @@ class RunSummary:
     @property
     def exit_code(self) -> int:
         return 1 if self.failures else 0
+
+
+def run_pass(
+    executor: Any, name: str, fn: Callable[..., Any], jobs: list[tuple],
+    emit: Callable[[Event], None],
+) -> Iterator[tuple[int, Any]]:
+    """Run one pass of tasks on ``executor``, announcing it and each finished task.
+
+    Yields ``(index into jobs, result)`` as tasks finish.
+    """
+    emit(Event("pass", name=name, total=len(jobs)))
+    for index, res in executor.map_unordered(fn, jobs):
+        emit(Event("advance", name=name))
+        yield index, res

@@ -15,7 +15,7 @@ import numpy as np
 import xarray as xr
 
 from pipeline import tasks
-from pipeline.batch.events import Event
+from pipeline.batch.events import Event, run_pass
 from pipeline.config import Config
 from pipeline.errors import ConfigError, IsogapError
 from pipeline.io.readers import read_file
@@ -112,11 +112,9 @@ def lateral_scale(
     executor: Any, staged: list[str], config: Config, emit: Callable[[Event], None],
 ) -> dict[str, Any] | None:
     """Lateral scale factors from the run's atomically resolved frames (confidence-weighted)."""
-    emit(Event("pass", name="lattice", total=len(staged)))
     found = []
-    for _, res in executor.map_unordered(tasks.lattice_of_frame,
-                                         [(p, config) for p in staged]):
-        emit(Event("advance", name="lattice"))
+    for _, res in run_pass(executor, "lattice", tasks.lattice_of_frame,
+                           [(p, config) for p in staged], emit):
         if res is not None:
             found.append(res)
     if not found:
@@ -158,14 +156,12 @@ def drift_model(
                    "pixel size"))
         return None, None
     jobs = [(staged[order[i]], staged[order[j]], config) for i, j in pairs]
-    emit(Event("pass", name="drift", total=len(jobs)))
     shifts: list[Any] = [None] * len(jobs)
     updowns = []
-    for k, (shift, updown) in executor.map_unordered(tasks.register_pair, jobs):
+    for k, (shift, updown) in run_pass(executor, "drift", tasks.register_pair, jobs, emit):
         shifts[k] = shift
         if updown is not None and updown.confidence >= d.min_confidence:
             updowns.append(updown)
-        emit(Event("advance", name="drift"))
     try:
         model = fit_drift_series(times, shifts, frame_ids=order, min_confidence=d.min_confidence,
                                  model=d.model, smooth_degree=d.smooth_degree,
