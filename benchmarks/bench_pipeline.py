@@ -42,7 +42,8 @@ HERE = Path(__file__).resolve()
 
 
 def make_frames(folder: Path, n: int, size: int, seed: int = 0) -> list[Path]:
-    """``n`` constant-current frames of ``size``² pixels, both traces, with drift and steps."""
+    """``n`` constant-current frames of ``size``² pixels, both traces, with drift, steps,
+    adsorbates, 2 % current noise, 2 pm z noise and 20 pm line offsets."""
     from pipeline.io.writers import write_raw_netcdf
     from pipeline.simulate import random_surface, simulate_constant_current_frame
 
@@ -58,7 +59,8 @@ def make_frames(folder: Path, n: int, size: int, seed: int = 0) -> list[Path]:
         raw, _ = simulate_constant_current_frame(
             surface, rng=rng, phi_eV=4.6, setpoint_A=1e-10, bias_V=0.5, nx=size, ny=size,
             size_x_m=30e-9, size_y_m=30e-9, line_time_s=line_time, start_time=start,
-            run_t0=t0, drift_velocity_m_per_s=(1e-11, -0.5e-11), frame_id=f"f{k:04d}")
+            run_t0=t0, drift_velocity_m_per_s=(1e-11, -0.5e-11), current_noise_fraction=0.02,
+            z_noise_m=2e-12, line_offsets_m=2e-11, frame_id=f"f{k:04d}")
         paths.append(write_raw_netcdf(raw, folder / f"f{k:04d}.nc"))
     return paths
 
@@ -159,7 +161,7 @@ def main() -> None:
     ap.add_argument("--child", nargs=4, metavar=("MODE", "FOLDER", "STORE", "WORKERS"),
                     help=argparse.SUPPRESS)
     ap.add_argument("--size", type=int, default=512, help="frame size for (a), (b)")
-    ap.add_argument("--frames", type=int, default=10, help="frames for (a), (b)")
+    ap.add_argument("--frames", type=int, default=16, help="frames for (a), (b)")
     ap.add_argument("--full", action="store_true", help="run lengths 20/100/400, sizes to 2048")
     args = ap.parse_args()
     if args.child:

@@ -9,6 +9,7 @@ depend on a number typed into a config file.
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 
@@ -107,16 +108,32 @@ def _fill_invalid(values: np.ndarray, ok: np.ndarray) -> np.ndarray:
 
 
 def _remove_plane(values: np.ndarray, ok: np.ndarray) -> np.ndarray:
-    """``values`` minus its least-squares plane through the ``ok`` pixels (normal equations)."""
+    """``values`` minus its least-squares plane through the ``ok`` pixels (normal equations).
+
+    The plane is ``c0 + c1 u + c2 v`` with ``u = (i - nx/2)/nx`` along a row and
+    ``v = (k - ny/2)/ny`` down a column; the nine sums of the normal equations are taken
+    over rows and columns of the masked map (u depends only on the column, v on the row).
+    """
     ny, nx = values.shape
-    yy, xx = np.mgrid[0:ny, 0:nx]
-    u = (xx - nx / 2) / nx
-    v = (yy - ny / 2) / ny
-    basis = (np.ones_like(u), u, v)
-    gram = np.array([[float((a * b)[ok].sum()) for b in basis] for a in basis])
-    rhs = np.array([float((a * values)[ok].sum()) for a in basis])
+    u = (np.arange(nx) - nx / 2) / nx
+    v = (np.arange(ny) - ny / 2) / ny
+    if ok.all():
+        zm = values
+        col_n, row_n = np.full(nx, float(ny)), np.full(ny, float(nx))
+        suv = float(v.sum()) * float(u.sum())
+    else:
+        okf = ok.astype(np.float64)
+        zm = np.where(ok, values, 0.0)
+        col_n, row_n = okf.sum(axis=0), okf.sum(axis=1)
+        suv = float(v @ (okf @ u))
+    col_z, row_z = zm.sum(axis=0), zm.sum(axis=1)
+    n = float(col_n.sum())
+    su, sv = float(col_n @ u), float(row_n @ v)
+    suu, svv = float(col_n @ (u * u)), float(row_n @ (v * v))
+    gram = np.array([[n, su, sv], [su, suu, suv], [sv, suv, svv]])
+    rhs = np.array([float(col_z.sum()), float(col_z @ u), float(row_z @ v)])
     coef = np.linalg.lstsq(gram, rhs, rcond=None)[0]
-    return values - (coef[0] + coef[1] * u + coef[2] * v)
+    return values - ((coef[0] + coef[1] * u)[None, :] + (coef[2] * v)[:, None])
 
 
 def _hann(n: int) -> np.ndarray:
@@ -124,8 +141,9 @@ def _hann(n: int) -> np.ndarray:
     return np.hanning(n + 2)[1:-1]
 
 
-def _high_pass(ny: int, nx: int) -> tuple[np.ndarray, np.ndarray]:
-    """Raised-cosine high-pass gain on the ``rfft2`` grid, and the bins' multiplicity."""
+@functools.lru_cache(maxsize=8)
+def _spectral_grid(ny: int, nx: int) -> _Grid:
+    """Window, high-pass gain and bin multiplicity of one frame shape (computed once)."""
     ky = sfft.fftfreq(ny)[:, None]
     kx = sfft.rfftfreq(nx)[None, :]
     rho = np.hypot(ky, kx) / 0.5
@@ -136,18 +154,173 @@ def _high_pass(ny: int, nx: int) -> tuple[np.ndarray, np.ndarray]:
     mult[0] = 1.0
     if nx % 2 == 0:
         mult[-1] = 1.0
-    return gain, np.broadcast_to(mult[None, :], gain.shape)
+    mult2 = np.broadcast_to(mult[None, :], gain.shape)
+    w = _hann(ny)[:, None] * _hann(nx)[None, :]
+    grid = _Grid(window=w, window2=w**2, gain=gain, mult=mult2, band=gain > 0.5,
+                 kept0=float((mult2 * gain**2).sum()) / (ny * nx))
+    for arr in (grid.window, grid.window2, grid.gain, grid.band):
+        arr.setflags(write=False)
+    return grid
+
+
+@dataclass(frozen=True)
+class _Grid:
+    window: np.ndarray  # 2-D Hann window
+    window2: np.ndarray  # its square
+    gain: np.ndarray  # raised-cosine high-pass gain on the rfft2 grid
+    mult: np.ndarray  # multiplicity of each rfft2 bin in the full spectrum (1 or 2)
+    band: np.ndarray  # bins with gain > 0.5
+    kept0: float  # fraction of white-noise energy the plain high-pass keeps
+
+
+class _FFT2:
+    """Real 2-D FFT of one frame shape into preallocated buffers.
+
+    The same transforms (and numbers) as ``rfft2``/``irfft2``: the two 1-D passes those
+    functions make, with the intermediate in one buffer instead of a fresh frame-sized array
+    per call.
+    """
+
+    def __init__(self, shape: tuple[int, int]) -> None:
+        self.nx = shape[1]
+        self.tmp = np.empty((shape[0], shape[1] // 2 + 1), dtype=np.complex128)
+
+    def forward(self, x: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        out = np.empty_like(self.tmp) if out is None else out
+        return np.fft.rfft2(x, out=out)
+
+    def inverse(self, spec: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """``irfft2(spec)``; ``spec`` is left unchanged."""
+        np.fft.ifft(spec, axis=0, out=self.tmp)
+        return np.fft.irfft(self.tmp, n=self.nx, axis=1, out=out)
+
+
+class _GapFill:
+    """One Landweber step ``x[gap] -= (G² x)[gap]`` at a time, ``x`` a map with gaps.
+
+    ``rfft2`` is a transform of every row, then of every column; ``irfft2`` the reverse. Only
+    the rows holding gap pixels change between steps, and only those rows of ``G² x`` are
+    needed, so the row transforms of the other rows are kept from the first step and only the
+    gap rows are transformed again (identical numbers: each row is transformed on its own).
+    """
+
+    def __init__(self, x: np.ndarray, gap: np.ndarray, fft: _FFT2) -> None:
+        self.x, self.fft = x, fft
+        self.rows = np.flatnonzero(gap.any(axis=1))
+        self.all_rows = self.rows.size == x.shape[0]
+        if self.all_rows:  # plain whole-frame transforms into fixed buffers
+            self.flat_gap = np.flatnonzero(gap)
+            self.corr = np.empty_like(x)
+        else:
+            self.idx = np.nonzero(gap[self.rows])  # gap pixels in the (gap rows, x) block
+        self.row_spec = np.fft.rfft(x, axis=1)
+
+    def step(self, spec: np.ndarray, filtered: np.ndarray) -> None:
+        """Update ``x`` from ``filtered = G² rfft2(x)``; ``spec`` becomes ``rfft2`` of the
+        new ``x``. ``filtered`` is overwritten."""
+        x, rows, nx = self.x, self.rows, self.fft.nx
+        cols = np.fft.ifft(filtered, axis=0, out=filtered)
+        if self.all_rows:
+            corr = np.fft.irfft(cols, n=nx, axis=1, out=self.corr)
+            flat = x.reshape(-1)
+            flat[self.flat_gap] -= corr.reshape(-1)[self.flat_gap]
+            np.fft.rfft(x, axis=1, out=self.row_spec)
+        else:
+            corr = np.fft.irfft(cols[rows], n=nx, axis=1)
+            block = x[rows]
+            block[self.idx] -= corr[self.idx]
+            x[rows] = block
+            self.row_spec[rows] = np.fft.rfft(block, axis=1)
+        np.fft.fft(self.row_spec, axis=0, out=spec)
+
+
+def _grow(mask: np.ndarray, radius: int, axis: int, *, wrap: bool = False) -> np.ndarray:
+    """Running maximum of a boolean map over ``2 radius + 1`` pixels along ``axis``.
+
+    Outside the map counts as False, or, with ``wrap``, the map repeats periodically (the
+    boundary modes ``constant``/``wrap`` of ``ndimage.maximum_filter1d``), as ORs of shifted
+    slices.
+    """
+    out = mask.copy()
+    n = mask.shape[axis]
+
+    def sl(start: int | None, stop: int | None) -> tuple[slice, ...]:
+        return (slice(None),) * axis + (slice(start, stop),)
+
+    for s in range(1, min(radius, n - 1) + 1):
+        out[sl(s, None)] |= mask[sl(None, -s)]
+        out[sl(None, -s)] |= mask[sl(s, None)]
+        if wrap:
+            out[sl(None, s)] |= mask[sl(n - s, None)]
+            out[sl(n - s, None)] |= mask[sl(None, s)]
+    return out
 
 
 def _dilate(mask: np.ndarray, radius: int) -> np.ndarray:
-    """Binary dilation by a square of half-width ``radius``."""
+    """Binary dilation by a square of half-width ``radius`` (outside the frame counts as False).
+
+    The square is separable: a running maximum along each axis (the same as
+    ``ndimage.binary_dilation`` with a full square structure).
+    """
     if not mask.any():
         return mask.copy()
-    return ndimage.binary_dilation(mask, structure=np.ones((2 * radius + 1,) * 2, bool))
+    return _grow(_grow(mask.astype(bool, copy=False), radius, 0), radius, 1)
+
+
+def _peak_bins(power: np.ndarray, threshold: float) -> np.ndarray:
+    """Bins at or above ``threshold``, widened by ``_PEAK_MARGIN_BINS`` each way (periodic).
+
+    The same as ``ndimage.maximum_filter(power >= threshold, size=2 m + 1, mode="wrap")``.
+    """
+    hot = power >= threshold
+    r = _PEAK_MARGIN_BINS
+    if min(hot.shape) <= 2 * r + 1:
+        return ndimage.maximum_filter(hot.astype(np.uint8), size=2 * r + 1,
+                                      mode="wrap").astype(bool)
+    if not hot.any():
+        return hot
+    return _grow(_grow(hot, r, 0, wrap=True), r, 1, wrap=True)
+
+
+def _median(x: np.ndarray) -> float:
+    """``numpy.median`` of all entries (NaN if any is NaN), by one partition at the middle
+    index (the lower middle value of an even count is the largest entry below it): the same
+    number, several times faster than numpy's three-index partition."""
+    a = np.array(x, dtype=np.float64).ravel()
+    n = a.size
+    if n == 0:
+        return math.nan
+    k = n // 2
+    a.partition(k)
+    if math.isnan(float(a[k:].max())):
+        return math.nan
+    hi = float(a[k])
+    if n % 2:
+        return hi
+    return (float(a[:k].max()) + hi) / 2
 
 
 def _robust_var(y: np.ndarray) -> float:
-    return float((_MAD_TO_SIGMA * np.median(np.abs(y))) ** 2)
+    return float((_MAD_TO_SIGMA * _median(np.abs(y))) ** 2)
+
+
+def _level_groups(key: np.ndarray, n_bins: int) -> list[np.ndarray]:
+    """Index sets of ``np.array_split(np.argsort(key, kind="stable"), n_bins)``.
+
+    A quicksort order, with every run of equal keys that straddles a split put back in index
+    order (which is what the stable sort does), gives the same sets several times faster.
+    """
+    order = np.argsort(key)
+    srt = key[order]
+    q, r = divmod(key.size, n_bins)
+    bounds = np.cumsum([q + 1] * r + [q] * (n_bins - r))[:-1]
+    done = -1  # end of the last run put in order (one run may straddle several splits)
+    for b in bounds.tolist():
+        if max(done, 0) < b < srt.size and srt[b - 1] == srt[b]:
+            lo = int(np.searchsorted(srt, srt[b], side="left"))
+            done = int(np.searchsorted(srt, srt[b], side="right"))
+            order[lo:done] = np.sort(order[lo:done])
+    return np.split(order, bounds)
 
 
 def estimate_white_noise(
@@ -215,22 +388,23 @@ def estimate_white_noise(
     if ok.sum() < 16:
         return nan
     ny, nx = shape
-    filled = _remove_plane(_fill_invalid(arr, ok), ok)
-    w = _hann(ny)[:, None] * _hann(nx)[None, :]
-    gain, mult = _high_pass(ny, nx)
+    filled = _remove_plane(arr if ok.all() else _fill_invalid(arr, ok), ok)
+    grid = _spectral_grid(ny, nx)
+    w, w2, gain, mult, band = grid.window, grid.window2, grid.gain, grid.mult, grid.band
     windowed = filled * w
-    band = gain > 0.5
     if band.sum() < 8:
         return nan
-    w2 = w**2
+    fft = _FFT2((ny, nx))
+    spec = fft.forward(windowed)
     # Localised defects (spikes, scars, the edge of a step) are treated like gaps: they are
     # found on the plain high-passed map, where they stay local, as pixels beyond
     # _DEFECT_SIGMA robust σ (inflated by any lattice, hence conservative).
-    kept0 = float((mult * gain**2).sum()) / (ny * nx)
-    y0 = sfft.irfft2(sfft.rfft2(windowed) * gain, s=shape) / (w * math.sqrt(kept0))
+    work = np.empty_like(spec)
+    y0 = fft.inverse(np.multiply(spec, gain, out=work))
+    y0 /= w * math.sqrt(grid.kept0)
     inner = ok & (w > _MIN_WINDOW)
     if inner.sum() >= 16:
-        s0 = _MAD_TO_SIGMA * float(np.median(np.abs(y0[inner])))
+        s0 = _MAD_TO_SIGMA * _median(np.abs(y0[inner]))
         defect = ok & (np.abs(y0) > _DEFECT_SIGMA * s0) if s0 > 0 else np.zeros_like(ok)
         if defect.mean() < _MAX_DEFECT_FRACTION:
             ok = ok & ~_dilate(defect, 1)
@@ -243,66 +417,95 @@ def estimate_white_noise(
         stats &= np.isfinite(lev)
     if stats.sum() < 16:
         return nan
-    spec = sfft.rfft2(windowed)
     power = spec.real**2 + spec.imag**2
-    expected = float(np.median(power[band])) / _MEDIAN_EXP  # pass 1: periodogram median
+    expected = _median(power[band]) / _MEDIAN_EXP  # pass 1: periodogram median
+    levels = _LevelBins(lev[stats], stats.sum()) if lev is not None else None
+    fill = _GapFill(windowed, bad, fft) if bad.any() else None
+    w_stats = w[stats]
+    corr = np.empty(shape)
     est = nan
     for n_fill in (_INPAINT_ITERATIONS, _INPAINT_ITERATIONS // 2):  # pass 2 starts warm
-        peaks = ndimage.maximum_filter((power >= _PEAK_FACTOR * expected).astype(np.uint8),
-                                       size=2 * _PEAK_MARGIN_BINS + 1, mode="wrap")
-        g = gain * (peaks == 0)
+        g = np.where(_peak_bins(power, _PEAK_FACTOR * expected), 0.0, gain)
         kept = float((mult * g**2).sum()) / (ny * nx)
         if not kept > 0:
             return nan
-        if bad.any():
+        if fill is not None:
             # Fill the gaps with the values of least filtered energy ‖G x‖² (Landweber
             # iterations, stable for step 1 since the gain is at most 1), so that a gap on a
             # sharp feature leaves no defect for the peak mask to spread over the frame.
+            # ``spec`` is the transform of the current ``windowed`` throughout.
             g2 = g**2
             for _ in range(n_fill):
-                windowed[bad] -= sfft.irfft2(sfft.rfft2(windowed) * g2, s=shape)[bad]
-            spec = sfft.rfft2(windowed)
-        resid = sfft.irfft2(spec * g, s=shape)
-        y = resid[stats] / (w[stats] * math.sqrt(kept))
-        est = _fit_noise(y, None if lev is None else lev[stats], lev, shape)
-        expected = float((w2 * est.sigma**2)[ok].sum())  # pass 2: E|F|² = Σ w²σ²
+                fill.step(spec, np.multiply(spec, g2, out=work))
+        resid = fft.inverse(np.multiply(spec, g, out=work), out=corr)
+        y = resid[stats] / (w_stats * math.sqrt(kept))
+        est = _fit_noise(y, levels, lev, shape)
+        # pass 2: E|F|² = Σ w²σ² over the usable pixels
+        if est.relative == 0 and math.isfinite(est.constant):  # σ the same everywhere
+            expected = est.constant**2 * float(w2[ok].sum())
+        else:
+            expected = float(np.dot(np.where(ok, w2, 0.0).ravel(), (est.sigma**2).ravel()))
         if not expected > 0:
             break
         power = spec.real**2 + spec.imag**2
     return est
 
 
-def _fit_noise(y: np.ndarray, lev_stats: np.ndarray | None, lev: np.ndarray | None,
+class _LevelBins:
+    """Quantile bins of the signal level over the statistics pixels (the same in both passes)."""
+
+    def __init__(self, lev_stats: np.ndarray, n_pixels: int) -> None:
+        self.s2 = lev_stats**2
+        self.n_bins = min(_LEVEL_BINS, int(n_pixels) // _MIN_BIN_PIXELS)
+        self._groups: list[np.ndarray] | None = None
+        self._sb: np.ndarray | None = None
+
+    @property
+    def groups(self) -> list[np.ndarray]:
+        if self._groups is None:
+            self._groups = _level_groups(self.s2, self.n_bins)
+        return self._groups
+
+    @property
+    def sb(self) -> np.ndarray:
+        if self._sb is None:
+            self._sb = np.array([_median(self.s2[g]) for g in self.groups])
+        return self._sb
+
+
+def _fit_noise(y: np.ndarray, levels: _LevelBins | None, lev: np.ndarray | None,
                shape: tuple[int, ...]) -> NoiseEstimate:
     """Constant σ, or ``a² + b²·level²`` fitted to σ² in quantile bins of the level."""
     var0 = _robust_var(y)
-    const = NoiseEstimate(np.full(shape, math.sqrt(var0)), math.sqrt(var0), 0.0)
-    if lev_stats is None or lev is None or not var0 > 0:
-        return const
-    s2 = lev_stats**2
-    n_bins = min(_LEVEL_BINS, y.size // _MIN_BIN_PIXELS)
-    if n_bins < 2:
-        return const
-    groups = np.array_split(np.argsort(s2, kind="stable"), n_bins)
-    yb = np.array([_robust_var(y[g]) for g in groups])
-    sb = np.array([np.median(s2[g]) for g in groups])
-    s_scale = float(np.median(sb))
+
+    def const() -> NoiseEstimate:
+        return NoiseEstimate(np.full(shape, math.sqrt(var0)), math.sqrt(var0), 0.0)
+
+    if levels is None or lev is None or not var0 > 0:
+        return const()
+    if levels.n_bins < 2:
+        return const()
+    yb = np.array([_robust_var(y[g]) for g in levels.groups])
+    sb = levels.sb
+    s_scale = _median(sb)
     if not (s_scale > 0 and np.all(yb > 0)):
-        return const
+        return const()
     design = np.column_stack([np.ones_like(sb), sb / s_scale])
     weight = yb
     for _ in range(3):  # relative weights from the model, not from the noisy bin values
         coef, _ = nnls(design / weight[:, None], yb / weight)
         fitted = design @ coef
         if not np.all(fitted > 0):
-            return const
+            return const()
         weight = fitted
     a2, b2 = float(coef[0]), float(coef[1]) / s_scale
-    lev_f = np.where(np.isfinite(lev), lev, 0.0)
+    finite = np.isfinite(lev)
+    lev_f = np.where(finite, lev, 0.0)
     model = a2 + b2 * lev_f**2
-    if not np.all(model[np.isfinite(lev)] > 0):
-        return const
-    return NoiseEstimate(np.sqrt(model), math.sqrt(a2), math.sqrt(b2))
+    # a2, b2 >= 0 (non-negative least squares): the model is positive wherever a2 is
+    if not (a2 > 0 or np.all(model[finite] > 0)):
+        return const()
+    return NoiseEstimate(np.sqrt(model, out=model), math.sqrt(a2), math.sqrt(b2))
 
 
 # --------------------------------------------------------------------------------------------
@@ -356,8 +559,11 @@ def estimate_trace_lag(forward: np.ndarray, backward: np.ndarray) -> tuple[float
     nx = f.shape[1]
     if not rows.any() or nx < 4:
         return math.nan, 0.0
-    fr = _detrend_rows(_fill_invalid(np.where(ok, f, np.nan), ok)[rows])
-    br = _detrend_rows(_fill_invalid(np.where(ok, b, np.nan), ok)[rows])
+    if ok.all():  # nothing to fill: the same rows without the copies
+        fr, br = _detrend_rows(f), _detrend_rows(b)
+    else:
+        fr = _detrend_rows(_fill_invalid(np.where(ok, f, np.nan), ok)[rows])
+        br = _detrend_rows(_fill_invalid(np.where(ok, b, np.nan), ok)[rows])
     win = _hann(nx)
     ff = sfft.rfft(fr * win, axis=1)
     fb = sfft.rfft(br * win, axis=1)
@@ -390,24 +596,39 @@ def estimate_trace_lag(forward: np.ndarray, backward: np.ndarray) -> tuple[float
     return lag, rcoef
 
 
-def _shift_rows(a: np.ndarray, shift_px: float) -> np.ndarray:
-    """``a(x + shift_px)`` along the fast axis: Fourier shift of the mirror-extended rows.
+def _shift_rows(maps: list[np.ndarray], shift_px: float) -> list[np.ndarray]:
+    """``a(x + shift_px)`` along the fast axis for each map: Fourier shift of the
+    mirror-extended rows (all maps in one transform).
 
     Non-finite pixels are interpolated for the transform and come back as NaN wherever one of
     the two pixels bracketing the source position was non-finite. Sources beyond the frame
     edge are mirrored.
     """
-    ok = np.isfinite(a)
-    nx = a.shape[1]
-    filled = _fill_invalid(a, ok) if ok.any() else np.zeros_like(a, dtype=np.float64)
-    ext = np.concatenate([filled, filled[:, ::-1]], axis=1)
+    ny, nx = maps[0].shape
+    ext = np.empty((len(maps), ny, 2 * nx))
+    oks = []
+    for i, a in enumerate(maps):
+        ok = np.isfinite(a)
+        oks.append(ok)
+        if ok.all():
+            ext[i, :, :nx] = a
+        elif ok.any():
+            ext[i, :, :nx] = _fill_invalid(a, ok)
+        else:
+            ext[i, :, :nx] = 0.0
+        ext[i, :, nx:] = ext[i, :, nx - 1::-1]
     k = sfft.rfftfreq(2 * nx)
-    spec = sfft.rfft(ext, axis=1) * np.exp(2j * np.pi * k * shift_px)[None, :]
-    out = sfft.irfft(spec, n=2 * nx, axis=1)[:, :nx]
-    if not ok.all():
-        lo, hi = _bracket(nx, shift_px)
-        out[~ok[:, lo] | ~ok[:, hi]] = np.nan
-    return out
+    spec = np.fft.rfft(ext, axis=-1)
+    spec *= np.exp(2j * np.pi * k * shift_px)
+    full = np.fft.irfft(spec, n=2 * nx, axis=-1, out=ext)
+    outs = []
+    lo, hi = _bracket(nx, shift_px)
+    for i, ok in enumerate(oks):
+        out = full[i, :, :nx].copy()
+        if not ok.all():
+            out[~_take_columns(ok, lo) | ~_take_columns(ok, hi)] = np.nan
+        outs.append(out)
+    return outs
 
 
 def _bracket(nx: int, shift_px: float) -> tuple[np.ndarray, np.ndarray]:
@@ -418,6 +639,27 @@ def _bracket(nx: int, shift_px: float) -> tuple[np.ndarray, np.ndarray]:
     return lo, hi
 
 
+def _take_columns(a: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    """``a[:, idx]`` for column indices that are a clipped shift ``clip(j + k)`` except at a
+    few edge columns (as here): copied by slices, the exceptions one by one."""
+    n = a.shape[1]
+    k = int(idx[n // 2]) - n // 2
+    base = np.clip(np.arange(n) + k, 0, n - 1)
+    odd = np.flatnonzero(base != idx)
+    if abs(k) >= n or odd.size > 8:
+        return np.take(a, idx, axis=1)
+    out = np.empty_like(a)
+    if k >= 0:
+        out[:, :n - k] = a[:, k:]
+        out[:, n - k:] = a[:, -1:]
+    else:
+        out[:, -k:] = a[:, :n + k]
+        out[:, :-k] = a[:, :1]
+    if odd.size:
+        out[:, odd] = a[:, idx[odd]]
+    return out
+
+
 def _shift_linear(a: np.ndarray, shift_px: float) -> np.ndarray:
     """Linear interpolation of a smooth map (uncertainties) at ``x + shift_px``."""
     nx = a.shape[1]
@@ -425,7 +667,7 @@ def _shift_linear(a: np.ndarray, shift_px: float) -> np.ndarray:
     lo = np.clip(np.floor(src).astype(int), 0, nx - 1)
     hi = np.clip(lo + 1, 0, nx - 1)
     frac = src - lo
-    return a[:, lo] * (1 - frac) + a[:, hi] * frac
+    return _take_columns(a, lo) * (1 - frac) + _take_columns(a, hi) * frac
 
 
 # --------------------------------------------------------------------------------------------
@@ -521,10 +763,9 @@ def _shift_trace(t: _Trace, shift_px: float) -> _Trace:
     if shift_px == 0:
         return t
     lo, hi = _bracket(t.height.shape[1], shift_px)
-    flags = t.flags[:, lo] | t.flags[:, hi]
+    flags = _take_columns(t.flags, lo) | _take_columns(t.flags, hi)
     bad = (flags & np.uint8(BAD_PIXELS)) != 0
-    h = _shift_rows(t.height, shift_px)
-    p = _shift_rows(t.phi_part, shift_px)
+    h, p = _shift_rows([t.height, t.phi_part], shift_px)
     sig = _shift_linear(np.where(np.isfinite(t.sigma), t.sigma, 0.0), shift_px)
     h[bad] = np.nan
     p[bad] = np.nan
@@ -538,9 +779,23 @@ def _combine(fw: _Trace, bw: _Trace, *, lag_px: float, mismatch_sigma: float
     u = 0.0 if not math.isfinite(lag_px) else 0.5 * lag_px
     f, b = _shift_trace(fw, u), _shift_trace(bw, -u)
     fg, bg = np.isfinite(f.height), np.isfinite(b.height)
+    if fg.all() and bg.all():  # every pixel in both traces: the same result, fewer passes
+        diff = f.height - b.height
+        sd = np.sqrt(f.sigma * f.sigma + b.sigma * b.sigma)
+        mism = np.abs(diff) > mismatch_sigma * sd
+        if mism.any():
+            h = np.where(mism, f.height, 0.5 * (f.height + b.height))
+            p = np.where(mism, f.phi_part, 0.5 * (f.phi_part + b.phi_part))
+            sig = np.where(mism, f.sigma, 0.5 * sd)
+        else:
+            h, p, sig = 0.5 * (f.height + b.height), 0.5 * (f.phi_part + b.phi_part), 0.5 * sd
+        flags = np.zeros(h.shape, np.uint8)
+        flags[mism] |= np.uint8(Flag.TRACE_MISMATCH)
+        return _Trace(h, sig, p, flags), int(mism.sum())
     both = fg & bg
     diff = np.where(both, f.height - b.height, 0.0)
-    sd = np.hypot(np.where(both, f.sigma, 0.0), np.where(both, b.sigma, 0.0))
+    fs, bs = np.where(both, f.sigma, 0.0), np.where(both, b.sigma, 0.0)
+    sd = np.sqrt(fs * fs + bs * bs)  # hypot(fs, bs) to within an ulp, several times faster
     mism = both & (np.abs(diff) > mismatch_sigma * sd)
     agree = both & ~mism
     h = np.where(agree, 0.5 * (f.height + b.height), np.where(fg, f.height, b.height))

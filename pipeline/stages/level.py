@@ -138,6 +138,9 @@ class _Basis:
         self.pv = legendre.legvander(v, order)  # (ny, order+1)
         self.ii = np.array([t[0] for t in self.terms], dtype=int)
         self.jj = np.array([t[1] for t in self.terms], dtype=int)
+        # the factors of every term on the grid's columns / rows (one gather per design matrix)
+        self.pu_t = self.pu[:, self.ii]  # (nx, n_terms)
+        self.pv_t = self.pv[:, self.jj]  # (ny, n_terms)
 
     @property
     def n(self) -> int:
@@ -145,7 +148,15 @@ class _Basis:
 
     def at(self, iy: np.ndarray, ix: np.ndarray) -> np.ndarray:
         """Design matrix (n_pixels, n_terms) at pixel indices."""
-        return self.pu[ix][:, self.ii] * self.pv[iy][:, self.jj]
+        return self.pu_t[ix] * self.pv_t[iy]
+
+    def at_t(self, iy: np.ndarray, ix: np.ndarray) -> np.ndarray:
+        """:meth:`at` transposed, (n_terms, n_pixels); for the whole grid in raster order the
+        outer products of the factors (the same numbers, no gathers)."""
+        ny, nx = self.pv.shape[0], self.pu.shape[0]
+        if iy.size == ny * nx:  # every pixel, in raster order (np.nonzero of a full mask)
+            return (self.pv_t.T[:, :, None] * self.pu_t.T[:, None, :]).reshape(self.n, -1)
+        return self.pu_t.T[:, ix] * self.pv_t.T[:, iy]
 
     def surface(self, beta: np.ndarray) -> np.ndarray:
         """The fitted surface on the whole grid (ny, nx)."""
@@ -158,9 +169,7 @@ class _Basis:
         ny, nx = self.pv.shape[0], self.pu.shape[0]
         if self.n == 0:
             return np.zeros((ny, nx))
-        iy, ix = np.divmod(np.arange(ny * nx), nx)
-        phi = self.at(iy, ix)
-        return np.einsum("ij,jk,ik->i", phi, cov, phi).reshape(ny, nx).clip(min=0.0)
+        return _grid_variance(self.pu_t, self.pv_t, cov)
 
     def slope_at_centre(self, beta: np.ndarray, hx: float, hy: float) -> tuple[float, float]:
         """dh/dx and dh/dy (m/m) of the surface at the frame centre."""
@@ -172,21 +181,93 @@ class _Basis:
         return gx, gy
 
 
-def _tukey(t: np.ndarray) -> np.ndarray:
-    a = t / TUKEY_C
-    return np.where(np.abs(a) < 1.0, (1.0 - a * a) ** 2, 0.0)
+def _grid_variance(pu_t: np.ndarray, pv_t: np.ndarray, cov: np.ndarray) -> np.ndarray:
+    """``phi^T C phi`` at every pixel for separable terms ``phi_k(y, x) = pv_t[y, k] pu_t[x, k]``.
+
+    ``sum_kl C_kl (pv_k pv_l)(y) (pu_k pu_l)(x)``: one (ny, K) x (K, nx) product over the
+    K = n(n+1)/2 term pairs instead of a quadratic form per pixel.
+    """
+    k, m = np.triu_indices(pu_t.shape[1])
+    c = np.where(k == m, cov[k, m], cov[k, m] + cov[m, k])
+    var = (pv_t[:, k] * pv_t[:, m] * c[None, :]) @ (pu_t[:, k] * pu_t[:, m]).T
+    return var.clip(min=0.0)
 
 
-def _huber(t: np.ndarray) -> np.ndarray:
-    at = np.abs(t)
-    return np.where(at <= HUBER_K, 1.0, HUBER_K / np.maximum(at, HUBER_K))
+def _median_inplace(a: np.ndarray) -> float:
+    """``numpy.median`` of a 1-D float64 array that may be reordered (NaN if any is NaN).
+
+    One partition at the middle index (the lower middle value for an even count is the
+    largest entry below it): the same number as ``numpy.median``, several times faster than
+    its three-index partition.
+    """
+    n = a.size
+    if n == 0:
+        return math.nan
+    k = n // 2
+    a.partition(k)
+    if math.isnan(float(a[k:].max())):  # NaN sort last: then numpy's median is NaN
+        return math.nan
+    hi = float(a[k])
+    if n % 2:
+        return hi
+    return (float(a[:k].max()) + hi) / 2
+
+
+def _median(x: np.ndarray) -> float:
+    """``numpy.median`` of all entries (see :func:`_median_inplace`)."""
+    return _median_inplace(np.array(x, dtype=np.float64).ravel())
+
+
+def _median_mad(x: np.ndarray) -> tuple[float, float]:
+    """``median(x)`` and ``median(|x - median(x)|)`` (unscaled), exactly as ``numpy.median``."""
+    a = np.array(x, dtype=np.float64).ravel()
+    med = _median_inplace(a)
+    if math.isnan(med):
+        return med, math.nan
+    np.subtract(a, med, out=a)
+    np.abs(a, out=a)
+    return med, _median_inplace(a)
+
+
+def _row_nanmedian(a: np.ndarray) -> np.ndarray:
+    """``numpy.nanmedian(a, axis=1)`` of a 2-D array (rows without finite entries: NaN).
+
+    One sort of all rows (NaN sort last) and the middle of each row's finite values: the same
+    numbers, without numpy's per-row masked-array path.
+    """
+    srt = np.sort(a, axis=1)
+    n = np.sum(~np.isnan(a), axis=1)
+    lo = np.clip((n - 1) // 2, 0, None)[:, None]
+    hi = np.clip(n // 2, 0, None)[:, None]
+    med = 0.5 * (np.take_along_axis(srt, lo, 1) + np.take_along_axis(srt, hi, 1))[:, 0]
+    return np.where(n > 0, med, np.nan)
 
 
 def _mad_scale(r: np.ndarray) -> float:
     if r.size == 0:
         return 0.0
-    med = float(np.median(r))
-    return MAD_TO_SIGMA * float(np.median(np.abs(r - med)))
+    return MAD_TO_SIGMA * _median_mad(r)[1]
+
+
+def _tukey_weights(t: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """Tukey's biweight ``(1 - (t/c)²)²`` for ``|t| < c``, else 0, written into ``out``.
+
+    Computed as ``max(1 - (t/c)², 0)²`` in place (``(t/c)² < 1`` exactly when ``|t/c| < 1``);
+    ``t = ±inf`` gives 0.
+    """
+    np.divide(t, TUKEY_C, out=out)
+    np.multiply(out, out, out=out)
+    np.subtract(1.0, out, out=out)
+    np.maximum(out, 0.0, out=out)
+    return np.multiply(out, out, out=out)
+
+
+def _huber_weights(t: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """Huber's weight ``min(1, k/|t|)`` written into ``out`` (as ``k / max(|t|, k)``: exactly 1
+    for ``|t| <= k``; ``t = ±inf`` gives 0)."""
+    np.abs(t, out=out)
+    np.maximum(out, HUBER_K, out=out)
+    return np.divide(HUBER_K, out, out=out)
 
 
 class _FitResult:
@@ -201,61 +282,210 @@ class _FitResult:
 
 
 def _fit(phi: np.ndarray, z: np.ndarray, labels: np.ndarray | None = None, n_labels: int = 0,
-         *, robust: bool) -> _FitResult:
-    """(Robust) least squares of ``z`` on ``[phi | one-hot(labels)]``.
+         *, robust: bool, need_scale: bool = True, grid: _Basis | None = None) -> _FitResult:
+    """(Robust) least squares of ``z`` on ``[phi.T | one-hot(labels)]``.
 
-    The one-hot block is never built: its normal-equation blocks come from ``bincount``. With
-    ``robust`` the fit is iteratively reweighted (a few Huber steps, then Tukey's biweight; scale
-    = MAD of the residuals, re-estimated at each step).
+    ``phi`` is the design transposed, (n_terms, n_pixels), so that every per-pixel product
+    runs along memory. ``grid``: the basis whose terms ``phi`` holds, when the pixels are the
+    whole grid in raster order (no labels); the reweighting sums then use the terms'
+    separable form (one pass over the weight map per solve).
+
+    The one-hot block is never built: its normal-equation blocks are sums over the pixels of
+    each label (the pixels are put in label order once, so that these are contiguous
+    ``add.reduceat`` sums). With ``robust`` the fit is iteratively reweighted (a few Huber
+    steps, then Tukey's biweight; scale = MAD of the residuals, re-estimated at each step).
+    ``need_scale=False`` skips the MAD of an ordinary fit (``scale`` is then NaN).
     """
-    n, p = phi.shape
+    p, n = phi.shape
     t = n_labels if labels is not None else 0
+    phi = np.ascontiguousarray(phi)
+    order: np.ndarray | None = None
+    lab = labels
+    starts: np.ndarray | None = None
+    if t:
+        assert labels is not None
+        counts = np.bincount(labels, minlength=t)
+        if counts.size == t and bool((counts > 0).all()):
+            key = labels.astype(np.int16) if t < 2**15 else labels
+            order = np.argsort(key, kind="stable")
+            phi, z, lab = phi[:, order], z[order], labels[order]
+            starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+
+    def label_sums(a: np.ndarray) -> np.ndarray:
+        """Sum over the pixels of each label along the last axis: (..., t)."""
+        assert lab is not None
+        if starts is not None:
+            return np.add.reduceat(a, starts, axis=-1)
+        if a.ndim == 1:
+            return np.bincount(lab, weights=a, minlength=t)
+        return np.stack([np.bincount(lab, weights=row, minlength=t) for row in a])
+
+    pw = np.empty_like(phi)
+    # Repeated solves (reweighting): every normal-equation entry is a weighted sum of one
+    # fixed per-pixel product, so those products are formed once and each solve is one
+    # matrix-vector product per label segment (several times less memory traffic).
+    sums: _WeightedSums | _GridSums | None = None
+    if robust and grid is not None and not t and grid.n == p:
+        sums = _GridSums(grid, z)
+    elif robust and p <= 8 and (not t or starts is not None):
+        sums = _WeightedSums(phi, z, None if not t else starts)
 
     def solve(w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        pw = phi * w[:, None]
+        if sums is not None:
+            m, rhs = sums.normal_equations(w)
+            minv = np.linalg.pinv(m, hermitian=True)
+            return minv @ rhs, minv
+        np.multiply(phi, w[None, :], out=pw)
         m = np.zeros((p + t, p + t))
         rhs = np.zeros(p + t)
-        m[:p, :p] = pw.T @ phi
-        rhs[:p] = pw.T @ z
+        if p <= 8:  # p dot products beat a (p, n) x (n, p) matrix product of this shape
+            for i in range(p):
+                for j in range(i + 1):
+                    m[i, j] = m[j, i] = pw[i] @ phi[j]
+        else:
+            m[:p, :p] = pw @ phi.T
+        rhs[:p] = pw @ z
         if t:
-            assert labels is not None
-            cross = np.stack([np.bincount(labels, weights=pw[:, j], minlength=t)
-                              for j in range(p)]) if p else np.zeros((0, t))
+            cross = label_sums(pw) if p else np.zeros((0, t))
             m[:p, p:] = cross
             m[p:, :p] = cross.T
-            m[p:, p:] = np.diag(np.bincount(labels, weights=w, minlength=t))
-            rhs[p:] = np.bincount(labels, weights=w * z, minlength=t)
+            m[p:, p:] = np.diag(label_sums(w))
+            rhs[p:] = label_sums(w * z)
         minv = np.linalg.pinv(m, hermitian=True)
         return minv @ rhs, minv
 
-    def predict(beta: np.ndarray) -> np.ndarray:
-        out = phi @ beta[:p] if p else np.zeros(n)
-        if t:
-            out = out + beta[p:][labels]
-        return out
+    def residual(beta: np.ndarray) -> np.ndarray:
+        if isinstance(sums, _GridSums):
+            return sums.residual(beta)
+        pred = beta[:p] @ phi if p else np.zeros(n)
+        if t and starts is not None:  # label runs: one offset per contiguous run
+            bounds = np.append(starts, n).tolist()
+            for k in range(t):
+                pred[bounds[k]:bounds[k + 1]] += beta[p + k]
+        elif t:
+            pred += beta[p:][lab]
+        return np.subtract(z, pred, out=pred)
 
     w = np.ones(n)
     beta, minv = solve(w)
-    resid = z - predict(beta)
-    scale = _mad_scale(resid)
+    resid = residual(beta)
+    scale = _mad_scale(resid) if (robust or need_scale) else math.nan
     it = 0
     if robust:
         for it in range(1, _MAX_ITER + 1):
             if scale <= _TINY_M:
                 break
-            tt = resid / scale
-            w = _huber(tt) if it <= _HUBER_ITER else _tukey(tt)
+            w = _irls_weights(resid, scale, huber=it <= _HUBER_ITER)
             new, minv = solve(w)
             change = float(np.max(np.abs(new - beta))) if new.size else 0.0
             beta = new
-            resid = z - predict(beta)
+            resid = residual(beta)
             scale = _mad_scale(resid)
             if it > _HUBER_ITER and change < 1e-5 * max(scale, _TINY_M):
                 break
     sw = float(w.sum())
     dof = sw - (p + t)
     sigma2 = float(np.sum(w * resid**2) / dof) if dof > 0 else 0.0
+    if order is not None:  # back to the caller's pixel order
+        back = np.empty_like(order)
+        back[order] = np.arange(order.size)
+        w, resid = w[back], resid[back]
     return _FitResult(beta, w, sigma2 * minv, resid, scale, it)
+
+
+def _irls_weights(resid: np.ndarray, scale: float, *, huber: bool) -> np.ndarray:
+    """Huber or Tukey weights of ``resid / scale``, block by block (each block's temporaries
+    stay in the processor's cache; elementwise, so the numbers are the same)."""
+    w = np.empty_like(resid)
+    tmp = np.empty(min(_BLOCK_PIXELS, resid.size))
+    for a in range(0, resid.size, _BLOCK_PIXELS):
+        r = resid[a:a + _BLOCK_PIXELS]
+        t = np.divide(r, scale, out=tmp[:r.size])
+        if huber:
+            _huber_weights(t, out=w[a:a + _BLOCK_PIXELS])
+        else:
+            _tukey_weights(t, out=w[a:a + _BLOCK_PIXELS])
+    return w
+
+
+class _GridSums:
+    """Normal equations and residuals of ``z ~ sum_k beta_k pv_t[y, k] pu_t[x, k]`` on a whole
+    grid (raster order) for any weights: ``sum w phi_i phi_j = sum_y pv_i pv_j (W pu_i pu_j)``,
+    one matrix product over the weight map ``W`` per solve."""
+
+    def __init__(self, basis: _Basis, z: np.ndarray) -> None:
+        self.pu, self.pv = basis.pu_t, basis.pv_t
+        ny, nx = self.pv.shape[0], self.pu.shape[0]
+        self.shape = (ny, nx)
+        self.z = z.reshape(ny, nx)
+        self.ii, self.jj = np.tril_indices(basis.n)
+        self.pu2 = self.pu[:, self.ii] * self.pu[:, self.jj]  # (nx, pairs)
+        self.pv2 = self.pv[:, self.ii] * self.pv[:, self.jj]  # (ny, pairs)
+
+    def normal_equations(self, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        wm = w.reshape(self.shape)
+        pairs = np.einsum("yk,yk->k", self.pv2, wm @ self.pu2)
+        rhs = np.einsum("yk,yk->k", self.pv, (wm * self.z) @ self.pu)
+        p = self.pu.shape[1]
+        m = np.zeros((p, p))
+        m[self.ii, self.jj] = pairs
+        m[self.jj, self.ii] = pairs
+        return m, rhs
+
+    def residual(self, beta: np.ndarray) -> np.ndarray:
+        pred = (self.pv * beta[None, :]) @ self.pu.T
+        return np.subtract(self.z, pred, out=pred).reshape(-1)
+
+
+class _WeightedSums:
+    """Normal equations of ``z ~ phi.T beta + offset[label]`` for any pixel weights ``w``.
+
+    Rows of ``q`` are the per-pixel products ``phi_i phi_j`` (i <= j), ``phi_i z`` and, with
+    label segments (pixels sorted by label, ``starts`` of each run), ``phi_i`` and ``z``: every
+    entry of the normal matrix and right-hand side is ``q_k . w`` over all pixels or over one
+    segment.
+    """
+
+    def __init__(self, phi: np.ndarray, z: np.ndarray, starts: np.ndarray | None) -> None:
+        p, n = phi.shape
+        self.p = p
+        self.ii, self.jj = np.tril_indices(p)
+        npair = self.ii.size
+        k = npair + p + (p + 2 if starts is not None else 0)
+        q = np.empty((k, n))
+        for r, (i, j) in enumerate(zip(self.ii, self.jj, strict=True)):
+            np.multiply(phi[i], phi[j], out=q[r])
+        for i in range(p):
+            np.multiply(phi[i], z, out=q[npair + i])
+        if starts is not None:
+            q[npair + p:npair + 2 * p] = phi
+            q[npair + 2 * p] = z
+            q[npair + 2 * p + 1] = 1.0
+        self.q = q
+        self.bounds = None if starts is None else np.append(starts, n).tolist()
+
+    def normal_equations(self, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        p, q, npair = self.p, self.q, self.ii.size
+        if self.bounds is None:
+            tot, seg = q @ w, None
+        else:
+            b = self.bounds
+            seg = np.array([q[:, b[k]:b[k + 1]] @ w[b[k]:b[k + 1]]
+                            for k in range(len(b) - 1)])  # (t, K)
+            tot = seg.sum(axis=0)
+        t = 0 if seg is None else seg.shape[0]
+        m = np.zeros((p + t, p + t))
+        rhs = np.zeros(p + t)
+        m[self.ii, self.jj] = tot[:npair]
+        m[self.jj, self.ii] = tot[:npair]
+        rhs[:p] = tot[npair:npair + p]
+        if seg is not None:
+            cross = seg[:, npair + p:npair + 2 * p].T  # (p, t)
+            m[:p, p:] = cross
+            m[p:, :p] = cross.T
+            m[p:, p:] = np.diag(seg[:, npair + 2 * p + 1])
+            rhs[p:] = seg[:, npair + 2 * p]
+        return m, rhs
 
 
 def _copy_with(ds: xr.Dataset, *, height: np.ndarray, flags: np.ndarray | None = None,
@@ -366,7 +596,8 @@ def subtract_background(
     u, v, hx, hy, _, _ = _coords(ds)
     basis = _Basis(u, v, order, constant=True)
     iy, ix = np.nonzero(valid)
-    fit = _fit(basis.at(iy, ix), h[iy, ix], robust=robust)
+    fit = _fit(basis.at_t(iy, ix), h[iy, ix], robust=robust,
+               grid=basis if iy.size == h.size else None)
     surf = basis.surface(fit.beta)
     new_flags = flags.copy()
     rejected = np.zeros_like(valid)
@@ -395,40 +626,62 @@ def subtract_background(
 # --------------------------------------------------------------------------------------------
 
 
+#: Pixels per block of rows in row-wise reweighting loops: a block's working arrays stay in
+#: the processor's cache through all iterations (several times faster than whole-frame passes
+#: on a memory-bound machine; rows are independent, so the numbers are the same).
+_BLOCK_PIXELS = 65536
+
+
 def _robust_line_differences(
     d: np.ndarray, m: np.ndarray, u: np.ndarray, *, slopes: bool
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Robust offset (and slope) of each row of ``d`` over its mask ``m``, all rows at once.
 
     Returns offset (R,), slope (R,) (zeros unless ``slopes``) and the standard error of the
-    offset (R,). Every row must have at least 3 pixels in ``m``.
+    offset (R,). Every row must have at least 3 pixels in ``m``. Twelve reweighting steps
+    (two Huber, then Tukey), computed in preallocated buffers, block of rows by block.
     """
+    step = max(1, _BLOCK_PIXELS // max(d.shape[1], 1))
+    if d.shape[0] > step:
+        parts = [_robust_line_differences(d[i:i + step], m[i:i + step], u, slopes=slopes)
+                 for i in range(0, d.shape[0], step)]
+        locs, slps, ses = zip(*parts, strict=True)
+        return np.concatenate(locs), np.concatenate(slps), np.concatenate(ses)
     dz = np.where(m, d, np.nan)
-    loc = np.nanmedian(dz, axis=1)
+    loc = _row_nanmedian(dz)
     slope = np.zeros_like(loc)
-    scale = MAD_TO_SIGMA * np.nanmedian(np.abs(dz - loc[:, None]), axis=1)
-    scale = np.maximum(scale, _TINY_M)
+    scale = MAD_TO_SIGMA * _row_nanmedian(np.abs(dz - loc[:, None]))
+    scale = np.maximum(scale, _TINY_M)[:, None]
     uu = np.broadcast_to(u[None, :], d.shape)
     d0 = np.where(m, d, 0.0)
-    w = m.astype(np.float64)
+    # +inf outside the mask: both weight functions give exactly 0 there (k/inf, max(1-inf, 0))
+    d_out = np.where(m, d, np.inf)
+    r = np.empty_like(d0)
+    w = np.empty_like(d0)
+    buf = np.empty_like(d0)
     for it in range(12):
-        r = d0 - loc[:, None] - slope[:, None] * uu
-        w = np.where(m, _huber(r / scale[:, None]) if it < 2 else _tukey(r / scale[:, None]),
-                     0.0)
+        np.subtract(d_out, loc[:, None], out=r)
+        if slopes:
+            r -= np.multiply(slope[:, None], uu, out=buf)
+        np.divide(r, scale, out=r)
+        if it < 2:
+            _huber_weights(r, out=w)
+        else:
+            _tukey_weights(r, out=w)
         s0 = w.sum(axis=1)
         ok = s0 > 0
+        t0 = np.einsum("ij,ij->i", w, d0)
         if slopes:
-            s1 = (w * uu).sum(axis=1)
-            s2 = (w * uu * uu).sum(axis=1)
-            t0 = (w * d0).sum(axis=1)
-            t1 = (w * uu * d0).sum(axis=1)
+            s1 = np.multiply(w, uu, out=buf).sum(axis=1)
+            s2 = (np.multiply(buf, uu, out=buf)).sum(axis=1)
+            t1 = (np.multiply(np.multiply(w, uu, out=buf), d0, out=buf)).sum(axis=1)
             det = s0 * s2 - s1 * s1
             ok &= det > 1e-12 * np.maximum(s0 * s2, 1e-300)
             det_safe = np.where(ok, det, 1.0)
             loc = np.where(ok, (s2 * t0 - s1 * t1) / det_safe, loc)
             slope = np.where(ok, (s0 * t1 - s1 * t0) / det_safe, slope)
         else:
-            loc = np.where(ok, (w * d0).sum(axis=1) / np.where(ok, s0, 1.0), loc)
+            loc = np.where(ok, t0 / np.where(ok, s0, 1.0), loc)
     r = d0 - loc[:, None] - slope[:, None] * uu
     s0 = w.sum(axis=1)
     npar = 2.0 if slopes else 1.0
@@ -444,7 +697,7 @@ def _running_median(c: np.ndarray, w: int, *, after: bool) -> np.ndarray:
     win = np.lib.stride_tricks.sliding_window_view(pad, w)
     # window starting at index s of pad covers c[s-w .. s-1]
     starts = np.arange(n - 1) + (w + 1 if after else 1)
-    return np.nanmedian(win[starts], axis=1)
+    return _row_nanmedian(win[starts])
 
 
 def _detect_line_steps(c: np.ndarray, sigma_o: float, *, window: int,
@@ -613,6 +866,50 @@ def level_lines(
     return out
 
 
+def _sobel_magnitude(sm: np.ndarray) -> np.ndarray:
+    """``hypot(sobel(sm, axis=1), sobel(sm, axis=0)) / 8`` with ``mode="nearest"``.
+
+    The Sobel sums are those of ``ndimage.sobel`` term by term (difference ``x[+1] - x[-1]``
+    along one axis, then ``2 x[0] + (x[-1] + x[+1])`` along the other, edges replicated), on
+    slices of one padded copy; the magnitude is ``sqrt(gx² + gy²)``, within an ulp of hypot.
+    """
+    p = np.pad(sm, 1, mode="edge")
+    dx = p[:, 2:] - p[:, :-2]  # (ny + 2, nx)
+    dy = p[2:, :] - p[:-2, :]  # (ny, nx + 2)
+    gx = 2.0 * dx[1:-1] + (dx[:-2] + dx[2:])
+    gy = 2.0 * dy[:, 1:-1] + (dy[:, :-2] + dy[:, 2:])
+    gx /= 8.0
+    gy /= 8.0
+    gx *= gx
+    gy *= gy
+    gx += gy
+    return np.sqrt(gx, out=gx)
+
+
+def _masked_smooth(h: np.ndarray, valid: np.ndarray, sigma_px: float
+                   ) -> tuple[np.ndarray, np.ndarray]:
+    """Normalised Gaussian smoothing over the ``valid`` pixels, and where it has support.
+
+    ``gaussian(h * valid) / gaussian(valid)`` where the smoothed mask is at least 0.5, else 0.
+    With every pixel valid the smoothed mask is the same number everywhere (the kernel's sum,
+    accumulated in the same order at every pixel), so it is taken from a 1 x 1 frame.
+    """
+    if sigma_px > 0:
+        num = ndimage.gaussian_filter(np.where(valid, h, 0.0), sigma_px, mode="nearest")
+        if valid.all():
+            den = ndimage.gaussian_filter(np.ones((1, 1)), sigma_px, mode="nearest")
+        else:
+            den = ndimage.gaussian_filter(valid.astype(np.float64), sigma_px, mode="nearest")
+    else:
+        num, den = np.where(valid, h, 0.0), valid.astype(np.float64)
+    support = np.broadcast_to(den >= 0.5, h.shape)
+    if den.size == 1:
+        sm = num / den if bool(support.flat[0]) else np.zeros_like(num)
+    else:
+        sm = np.where(support, num / np.where(support, den, 1.0), 0.0)
+    return sm, support
+
+
 def _edge_mask(h: np.ndarray, valid: np.ndarray, *, min_step_m: float,
                threshold_sigma: float = 4.0, sigma_px: float = 1.0,
                grow_px: int = 2) -> np.ndarray:
@@ -621,20 +918,16 @@ def _edge_mask(h: np.ndarray, valid: np.ndarray, *, min_step_m: float,
     The threshold is at least a quarter of the peak gradient of a step of ``min_step_m`` (so
     that small line-to-line errors of a first pass do not count as edges).
     """
-    num = ndimage.gaussian_filter(np.where(valid, h, 0.0), sigma_px, mode="nearest")
-    den = ndimage.gaussian_filter(valid.astype(np.float64), sigma_px, mode="nearest")
-    support = den >= 0.5
-    sm = np.where(support, num / np.where(support, den, 1.0), 0.0)
-    g = np.hypot(ndimage.sobel(sm, axis=1, mode="nearest"),
-                 ndimage.sobel(sm, axis=0, mode="nearest")) / 8.0
+    sm, support = _masked_smooth(h, valid, sigma_px)
+    g = _sobel_magnitude(sm)
     gv = g[valid & support]
     if gv.size == 0:
         return np.zeros_like(valid)
-    med = float(np.median(gv))
-    spread = MAD_TO_SIGMA * float(np.median(np.abs(gv - med)))
+    med, mad = _median_mad(gv)
+    spread = MAD_TO_SIGMA * mad
     floor = 0.25 * min_step_m / (math.sqrt(2 * math.pi) * sigma_px)
     mask = (g > max(med + threshold_sigma * spread, floor)) & support
-    return ndimage.binary_dilation(mask, iterations=grow_px) if mask.any() else mask
+    return _dilate_cross(mask, grow_px) if mask.any() else mask
 
 
 class _LineMatch:
@@ -687,7 +980,7 @@ def _match_lines(h: np.ndarray, use: np.ndarray, valid: np.ndarray, rows: np.nda
     # jumps found, and the search repeated once about that line.
     k = (rows - rows.mean()) / max(float(np.ptp(rows)), 1.0)
     base = np.stack([np.ones_like(k), k], axis=1)
-    trend = base @ _fit(base, c, robust=True).beta
+    trend = base @ _fit(base.T, c, robust=True).beta
     steps = np.zeros(0, dtype=int)
     for _ in range(2):
         steps = _detect_line_steps(c - trend, sigma_o, window=window,
@@ -719,26 +1012,17 @@ def _segment(r: np.ndarray, valid: np.ndarray, *, sigma_px: float, threshold_sig
 
     Returns the labels and the gradient threshold used (m per pixel).
     """
-    vm = valid.astype(np.float64)
-    if sigma_px > 0:
-        num = ndimage.gaussian_filter(np.where(valid, r, 0.0), sigma_px, mode="nearest")
-        den = ndimage.gaussian_filter(vm, sigma_px, mode="nearest")
-    else:
-        num, den = np.where(valid, r, 0.0), vm
-    support = den >= 0.5
-    sm = np.where(support, num / np.where(support, den, 1.0), 0.0)
-    gx = ndimage.sobel(sm, axis=1, mode="nearest") / 8.0
-    gy = ndimage.sobel(sm, axis=0, mode="nearest") / 8.0
-    g = np.hypot(gx, gy)
+    sm, support = _masked_smooth(r, valid, sigma_px)
+    g = _sobel_magnitude(sm)
     inside = valid & support
     gv = g[inside]
-    med = float(np.median(gv)) if gv.size else 0.0
-    spread = MAD_TO_SIGMA * float(np.median(np.abs(gv - med))) if gv.size else 0.0
+    med, mad = _median_mad(gv) if gv.size else (0.0, 0.0)
+    spread = MAD_TO_SIGMA * mad
     # a sharp step of min_step_m, smoothed by the Gaussian, peaks at min_step/(sqrt(2 pi) sigma)
     floor = 0.5 * min_step_m / (math.sqrt(2 * math.pi) * max(sigma_px, 0.5))
     thr = max(med + threshold_sigma * spread, floor)
     edges = (g > thr) | ~inside
-    edges = ndimage.binary_dilation(edges, iterations=1)
+    edges = _dilate_cross(edges, 1)
     lab, n = ndimage.label(~edges)
     sizes = np.bincount(lab.ravel(), minlength=n + 1)
     keep = sizes >= min_px
@@ -749,27 +1033,41 @@ def _segment(r: np.ndarray, valid: np.ndarray, *, sigma_px: float, threshold_sig
 
 
 def _adjacent_pairs(labels: np.ndarray, n_labels: int, reach: int) -> dict[tuple[int, int], int]:
-    """Pairs of labels that face each other across at most ``reach`` pixels, with counts."""
+    """Pairs of labels that face each other across at most ``reach`` pixels, with counts.
+
+    Every pixel pair (p, p + s) along a row, column or diagonal with two different labels is
+    counted. Regions are 4-connected, so the straight path between such a pair crosses an
+    unassigned pixel (for a diagonal step the two pixels beside it are unassigned) within
+    ``|s|`` of p: only pixels that close to an unassigned one are examined.
+    """
     counts: dict[tuple[int, int], int] = {}
     if n_labels < 2:
         return counts
     ny, nx = labels.shape
+    assigned = labels >= 0
+    ys, xs = np.nonzero(assigned & _dilate_square(~assigned, reach))
+    la = labels[ys, xs]
+    total = np.zeros(n_labels * n_labels, dtype=np.int64) if n_labels <= 1024 else None
     for s in range(1, reach + 1):
         for dy, dx in ((0, s), (s, 0), (s, s), (s, -s)):
-            x0, x1 = max(0, -dx), nx - max(0, dx)
-            if dy >= ny or x1 <= x0:
-                continue
-            a = labels[0:ny - dy, x0:x1]
-            b = labels[dy:ny, x0 + dx:x1 + dx]
-            m = (a >= 0) & (b >= 0) & (a != b)
+            y2, x2 = ys + dy, xs + dx
+            inb = (y2 < ny) & (x2 >= 0) & (x2 < nx)
+            a, b = la[inb], labels[y2[inb], x2[inb]]
+            m = (b >= 0) & (a != b)
             if not m.any():
                 continue
-            lo = np.minimum(a[m], b[m])
-            hi = np.maximum(a[m], b[m])
-            codes, cnt = np.unique(lo * n_labels + hi, return_counts=True)
-            for code, k in zip(codes.tolist(), cnt.tolist(), strict=True):
-                key = (code // n_labels, code % n_labels)
+            am, bm = a[m], b[m]
+            code = np.minimum(am, bm) * n_labels + np.maximum(am, bm)
+            if total is not None:  # few labels: one count per possible pair
+                total += np.bincount(code, minlength=n_labels * n_labels)
+                continue
+            codes, cnt = np.unique(code, return_counts=True)
+            for c, k in zip(codes.tolist(), cnt.tolist(), strict=True):
+                key = (c // n_labels, c % n_labels)
                 counts[key] = counts.get(key, 0) + k
+    if total is not None:
+        for c in np.flatnonzero(total).tolist():
+            counts[(c // n_labels, c % n_labels)] = int(total[c])
     return {k: c for k, c in counts.items() if c >= 3}
 
 
@@ -959,9 +1257,9 @@ def level_terraces(
     _require(ds, valid, basis_c.n + 1, "terrace levelling")
     basis = _Basis(u, v, order, constant=False)
     iy, ix = np.nonzero(valid)
-    phi_c = basis_c.at(iy, ix)
+    phi_c = basis_c.at_t(iy, ix)
     z = h[iy, ix]
-    pre = _fit(phi_c, z, robust=True)
+    pre = _fit(phi_c, z, robust=True, grid=basis_c if iy.size == h.size else None)
     r = h - basis_c.surface(pre.beta)
     labels, _thr = _segment(r, valid, sigma_px=float(edge_smoothing_px),
                             threshold_sigma=float(edge_threshold_sigma),
@@ -982,7 +1280,9 @@ def level_terraces(
             raise ProcessingError(
                 f"frame {_name(ds)}: terrace levelling needs at least {basis.n + n_lab + 1} "
                 f"pixels on terraces, found {jy.size}")
-        fit = _fit(basis.at(jy, jx), h[jy, jx], labels[jy, jx], n_lab, robust=robust)
+        # the terrace pixels' rows of the design without its constant column (same numbers
+        # as basis.at(jy, jx): basis_c's terms are (0, 0) followed by basis's)
+        fit = _fit(phi_c[1:, sel[iy, ix]], h[jy, jx], labels[jy, jx], n_lab, robust=robust)
         d = fit.beta[basis.n:]
         pairs = _adjacent_pairs(labels, n_lab, reach)
         merge = [p for p in pairs if abs(d[p[0]] - d[p[1]]) < min_step_height_m]
@@ -1009,12 +1309,11 @@ def level_terraces(
     plane = basis.surface(beta[:basis.n])
     out_h = h - plane - d[0]
     # uncertainty of the subtracted plane + reference offset
-    ny, nx = h.shape
-    py, px = np.divmod(np.arange(ny * nx), nx)
-    phi_full = np.concatenate([basis.at(py, px), np.ones((ny * nx, 1))], axis=1)
     sub = np.r_[np.arange(basis.n), basis.n]
     csub = cov_all[np.ix_(sub, sub)]
-    var_sub = np.einsum("ij,jk,ik->i", phi_full, csub, phi_full).reshape(ny, nx).clip(min=0)
+    ones_u, ones_v = np.ones((basis.pu_t.shape[0], 1)), np.ones((basis.pv_t.shape[0], 1))
+    var_sub = _grid_variance(np.concatenate([basis.pu_t, ones_u], axis=1),
+                             np.concatenate([basis.pv_t, ones_v], axis=1), csub)
     # tilt and its uncertainty
     gx, gy = basis.slope_at_centre(beta[:basis.n], hx, hy)
     jac = np.zeros((2, basis.n))
@@ -1026,7 +1325,8 @@ def level_terraces(
     residual_tilt = math.sqrt(max(float(np.trace(ctilt)), 0.0))
     # plain least-squares plane (order 1, all usable pixels) for comparison
     basis_p = _Basis(u, v, 1, constant=True)
-    plain = _fit(basis_p.at(iy, ix), z, robust=False)
+    plain = _fit(phi_c if order == 1 else basis_p.at_t(iy, ix), z, robust=False,
+                 need_scale=False)
     pgx, pgy = basis_p.slope_at_centre(plain.beta, hx, hy)
     new_flags = flags.copy()
     if robust:
@@ -1097,13 +1397,51 @@ def level_terraces(
 # --------------------------------------------------------------------------------------------
 
 
+def _close_rows(mask: np.ndarray, radius: int) -> np.ndarray:
+    """Binary closing along each row by a segment of ``2 radius + 1`` pixels.
+
+    The same as ``ndimage.binary_closing`` with a (1, 2 radius + 1) structure (outside the
+    frame counts as False in both the dilation and the erosion), done as running max / min.
+    """
+    size = 2 * radius + 1
+    m = mask.view(np.uint8) if mask.dtype == bool else mask.astype(np.uint8)
+    grown = ndimage.maximum_filter1d(m, size, axis=1, mode="constant", cval=0)
+    return ndimage.minimum_filter1d(grown, size, axis=1, mode="constant", cval=0).astype(bool)
+
+
+def _shifted_or(mask: np.ndarray, offsets: list[tuple[int, int]]) -> np.ndarray:
+    """``mask`` OR its copies moved by each (dy, dx) (pixels moved in from outside: False)."""
+    out = mask.copy()
+    ny, nx = mask.shape
+    for dy, dx in offsets:
+        if abs(dy) >= ny or abs(dx) >= nx:
+            continue
+        ty, sy = (slice(dy, None), slice(None, ny - dy)) if dy >= 0 else (
+            slice(None, ny + dy), slice(-dy, None))
+        tx, sx = (slice(dx, None), slice(None, nx - dx)) if dx >= 0 else (
+            slice(None, nx + dx), slice(-dx, None))
+        out[ty, tx] |= mask[sy, sx]
+    return out
+
+
+def _dilate_square(mask: np.ndarray, radius: int) -> np.ndarray:
+    """``ndimage.binary_dilation`` by a (2r+1)² square, as running ORs along each axis."""
+    rows = _shifted_or(mask, [(d, 0) for r in range(1, radius + 1) for d in (r, -r)])
+    return _shifted_or(rows, [(0, d) for r in range(1, radius + 1) for d in (r, -r)])
+
+
+def _dilate_cross(mask: np.ndarray, iterations: int) -> np.ndarray:
+    """``ndimage.binary_dilation(mask, iterations=n)`` (4-neighbour cross, outside False)."""
+    out = mask
+    for _ in range(iterations):
+        out = _shifted_or(out, [(1, 0), (-1, 0), (0, 1), (0, -1)])
+    return out
+
+
 def _row_median(a: np.ndarray) -> np.ndarray:
     """Median of each row over its finite entries (0 for rows without any)."""
-    out = np.zeros(a.shape[0])
-    ok = np.isfinite(a).any(axis=1)
-    if ok.any():
-        out[ok] = np.nanmedian(a[ok], axis=1)
-    return out
+    med = _row_nanmedian(a)
+    return np.where(np.isnan(med), 0.0, med)
 
 
 @stage(version="1")
@@ -1196,7 +1534,7 @@ def repair_scars(
     # adsorbate and the neighbour tests fail) are bridged so that the length test sees the
     # whole streak
     row = np.array([[0, 0, 0], [1, 1, 1], [0, 0, 0]])
-    bridged = low | (ndimage.binary_closing(low, structure=np.ones((1, 2 * _SCAR_GAP_PX + 1)))
+    bridged = low | (_close_rows(low, _SCAR_GAP_PX)
                      & np.where(fin, (np.abs(dev) > 0.25 * thr), False))
     lab, n = ndimage.label(bridged, structure=row)
     scar_inner = np.zeros_like(low)

@@ -71,6 +71,24 @@ def _nanmedian(a: np.ndarray, axis: int = -1) -> np.ndarray:
     return np.where(n > 0, med, np.nan)
 
 
+def _median(x: np.ndarray) -> float:
+    """``numpy.median`` of all entries (NaN if any is NaN), by one partition at the middle
+    index (the lower middle value of an even count is the largest entry below it): the same
+    number, several times faster than numpy's three-index partition."""
+    a = np.array(x, dtype=np.float64).ravel()
+    n = a.size
+    if n == 0:
+        return math.nan
+    k = n // 2
+    a.partition(k)
+    if math.isnan(float(a[k:].max())):
+        return math.nan
+    hi = float(a[k])
+    if n % 2:
+        return hi
+    return (float(a[:k].max()) + hi) / 2
+
+
 def _valid_height(ds: xr.Dataset) -> np.ndarray:
     """Height (float64) with NaN on non-finite and BAD_PIXELS-flagged pixels."""
     if "height" not in ds.data_vars:
@@ -132,11 +150,12 @@ def areal_parameters(height: np.ndarray, *, mask: np.ndarray | None = None) -> d
         raise ProcessingError("areal parameters: no valid pixel (all non-finite or masked)")
     v = h[ok]
     z = v - v.mean() if np.ptp(v) > 0 else np.zeros_like(v)  # no rounding noise if flat
-    sq = float(np.sqrt(np.mean(z**2)))
+    sq = float(np.sqrt(np.mean(z * z)))
     sa = float(np.mean(np.abs(z)))
     if sq > 0:
-        ssk = float(np.mean(z**3) / sq**3)
-        sku = float(np.mean(z**4) / sq**4)
+        z2 = z * z  # products, not z**3 / z**4 (a generic power is ~50x slower per pixel)
+        ssk = float(np.mean(z2 * z) / sq**3)
+        sku = float(np.mean(z2 * z2) / sq**4)
     else:
         ssk = sku = math.nan
     sp = float(z.max())
@@ -161,10 +180,52 @@ def _segment_medians(a: np.ndarray, n: int) -> np.ndarray:
     return np.column_stack([_nanmedian(a[:, lo:hi], axis=1) for lo, hi in _segments(n)])
 
 
+def _network(n: int) -> list[tuple[int, int]]:
+    """Comparators (i, j) of Batcher's odd-even merge sort for ``n`` inputs (any ``n``)."""
+    pairs: list[tuple[int, int]] = []
+    p = 1
+    while p < n:
+        k = p
+        while k >= 1:
+            for j in range(k % p, n - k, 2 * k):
+                for i in range(min(k, n - j - k)):
+                    if (i + j) // (2 * p) == (i + j + k) // (2 * p):
+                        pairs.append((i + j, i + j + k))
+            k //= 2
+        p *= 2
+    return pairs
+
+
 def _block_medians(a: np.ndarray) -> np.ndarray:
-    """Median over each run of ``_BLOCK_LINES`` consecutive rows: shape (ny − W + 1, ...)."""
-    win = np.lib.stride_tricks.sliding_window_view(a, _BLOCK_LINES, axis=0)
-    return _nanmedian(win, axis=-1)
+    """Median over each run of ``_BLOCK_LINES`` consecutive rows: shape (ny − W + 1, ...).
+
+    The same numbers as :func:`_nanmedian` over the sliding windows, computed with a sorting
+    network on whole shifted copies of the map (elementwise min/max, no per-window sort): NaN
+    become +inf, so they sort last, and each pixel takes the middle of its finite values.
+    """
+    w = _BLOCK_LINES
+    n_out = a.shape[0] - w + 1
+    if n_out < 1:
+        win = np.lib.stride_tricks.sliding_window_view(a, w, axis=0)
+        return _nanmedian(win, axis=-1)
+    arr = np.asarray(a, dtype=np.float64)
+    finite = ~np.isnan(arr)
+    all_finite = bool(finite.all())
+    filled = arr if all_finite else np.where(finite, arr, np.inf)
+    planes = [filled[k:k + n_out].copy() for k in range(w)]
+    tmp = np.empty_like(planes[0])
+    for i, j in _network(w):
+        np.minimum(planes[i], planes[j], out=tmp)
+        np.maximum(planes[i], planes[j], out=planes[j])
+        planes[i], tmp = tmp, planes[i]
+    if all_finite:
+        return 0.5 * (planes[(w - 1) // 2] + planes[w // 2])
+    count = sum(finite[k:k + n_out].astype(np.intp) for k in range(w))
+    srt = np.stack(planes, axis=-1)
+    lo = np.clip((count - 1) // 2, 0, None)[..., None]
+    hi = np.clip(count // 2, 0, None)[..., None]
+    med = 0.5 * (np.take_along_axis(srt, lo, -1) + np.take_along_axis(srt, hi, -1))[..., 0]
+    return np.where(count > 0, med, np.nan)
 
 
 def _block_trimmed_means(a: np.ndarray) -> np.ndarray:
@@ -339,18 +400,18 @@ def detect_tip_changes(ds: xr.Dataset, *, threshold_sigma: float = 8.0) -> list[
     # one side large, never both sides of its neighbours
     dy = np.fmin(np.vstack([step_y, pad]), np.vstack([pad, step_y]))[:, :-1]
     dy = np.where(np.isinf(dy), np.nan, dy)
-    grad = np.hypot(dx, dy)
+    grad = np.sqrt(dx * dx + dy * dy)  # hypot(dx, dy) to within an ulp (NaN stays NaN)
     finite_grad = grad[np.isfinite(grad)]
     if finite_grad.size:  # edges (steps, adsorbate flanks) are topography, not resolution
-        edge = np.where(np.isfinite(grad), grad, 0.0) > _EDGE_GRADIENT_FACTOR * float(
-            np.median(finite_grad))
+        edge = np.where(np.isfinite(grad), grad, 0.0) > _EDGE_GRADIENT_FACTOR * _median(
+            finite_grad)
         grad = np.where(edge, np.nan, grad)
         dx = np.where(edge, np.nan, dx)
     seg_r = _segment_medians(grad, nx - 1)
     seg_x = _segment_medians(dx, nx - 1)
     pos = seg_r[np.isfinite(seg_r) & (seg_r > 0)]
     if pos.size:
-        floor = 1e-3 * float(np.median(pos))
+        floor = 1e-3 * _median(pos)
         logr = np.log(np.where(np.isfinite(seg_r), np.maximum(seg_r, floor), np.nan))
         logx = np.log(np.where(np.isfinite(seg_x), np.maximum(seg_x, floor), np.nan))
         rblocks = _block_trimmed_means(logr)
