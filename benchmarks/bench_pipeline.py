@@ -41,9 +41,11 @@ HERE = Path(__file__).resolve()
 # --------------------------------------------------------------------------------------------
 
 
-def make_frames(folder: Path, n: int, size: int, seed: int = 0) -> list[Path]:
-    """``n`` constant-current frames of ``size``² pixels, both traces, with drift, steps,
-    adsorbates, 2 % current noise, 2 pm z noise and 20 pm line offsets."""
+def make_frames(folder: Path, n: int, size: int, seed: int = 0, *, noise: bool = True
+                ) -> list[Path]:
+    """``n`` constant-current frames of ``size``² pixels, both traces, with drift, steps and
+    adsorbates; with ``noise`` also the usual flaws: 2 % current noise, 2 pm z noise, 20 pm line
+    offsets, three scars and a lagging feedback loop. (Shared with ``bench_stages.py``.)"""
     from pipeline.io.writers import write_raw_netcdf
     from pipeline.simulate import random_surface, simulate_constant_current_frame
 
@@ -53,14 +55,16 @@ def make_frames(folder: Path, n: int, size: int, seed: int = 0) -> list[Path]:
                              corrugation_m=2e-11, n_adsorbates=6)
     t0 = datetime(2026, 3, 14, 22, 0, 0)
     line_time = 0.02 * size / 128
+    flaws = ({"current_noise_fraction": 0.02, "z_noise_m": 2e-12, "line_offsets_m": 2e-11,
+              "scars": 3, "feedback_time_constant_s": line_time / size} if noise else {})
     paths = []
     for k in range(n):
         start = t0 + timedelta(seconds=k * size * line_time * 1.05)
         raw, _ = simulate_constant_current_frame(
             surface, rng=rng, phi_eV=4.6, setpoint_A=1e-10, bias_V=0.5, nx=size, ny=size,
             size_x_m=30e-9, size_y_m=30e-9, line_time_s=line_time, start_time=start,
-            run_t0=t0, drift_velocity_m_per_s=(1e-11, -0.5e-11), current_noise_fraction=0.02,
-            z_noise_m=2e-12, line_offsets_m=2e-11, frame_id=f"f{k:04d}")
+            run_t0=t0, drift_velocity_m_per_s=(1e-11, -0.5e-11), frame_id=f"f{k:04d}",
+            **flaws)
         paths.append(write_raw_netcdf(raw, folder / f"f{k:04d}.nc"))
     return paths
 

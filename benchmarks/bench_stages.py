@@ -5,8 +5,8 @@ feedback loop, current and z noise, line offsets, a few scars) are written to ne
 frame is read and passed through the stages of ``process_frame`` in its order with the default
 configuration, every stage timed on its own with ``time.perf_counter``. Each frame is processed
 ``--repeat`` times and the median per stage is printed (the machine's cores are shared: medians,
-not means). ``--noise-free`` uses the frames of ``bench_pipeline.make_frames`` instead (no noise:
-the noise estimate is 0 there and every pixel's traces count as mismatched).
+not means). ``--noise-free`` drops the noise and flaws (the noise estimate is then 0 and every
+pixel's traces count as mismatched). The frames come from ``bench_pipeline.make_frames``.
 
 Usage::
 
@@ -23,13 +23,13 @@ map's largest magnitude; float64 arrays and attributes: 1e-6), integer maps and 
 from __future__ import annotations
 
 import argparse
+import functools
 import importlib.util
 import json
 import statistics
 import tempfile
 import time
 from collections.abc import Callable
-from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -42,37 +42,14 @@ STAGES = ("read", "reconstruct_height", "flag_tip_changes", "repair_scars", "lev
           "level_terraces", "assess_quality")
 
 
-def _noise_free_frames() -> Callable[..., list[Path]]:
+def _frame_maker() -> Callable[..., list[Path]]:
+    """``make_frames`` of ``bench_pipeline.py``: one frame maker for both benchmarks."""
     spec = importlib.util.spec_from_file_location("bench_pipeline", HERE.parent /
                                                   "bench_pipeline.py")
     assert spec is not None and spec.loader is not None
     mod = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(mod)
     return mod.make_frames
-
-
-def make_frames(folder: Path, n: int, size: int, seed: int = 0) -> list[Path]:
-    """``n`` constant-current frames of ``size``² pixels, both traces, with the usual flaws."""
-    from pipeline.io.writers import write_raw_netcdf
-    from pipeline.simulate import random_surface, simulate_constant_current_frame
-
-    folder.mkdir(parents=True, exist_ok=True)
-    rng = np.random.default_rng(seed)
-    surface = random_surface(rng, extent_m=(-30e-9, 30e-9, -30e-9, 30e-9), n_steps=3,
-                             corrugation_m=2e-11, n_adsorbates=6)
-    t0 = datetime(2026, 3, 14, 22, 0, 0)
-    line_time = 0.02 * size / 128
-    paths = []
-    for k in range(n):
-        start = t0 + timedelta(seconds=k * size * line_time * 1.05)
-        raw, _ = simulate_constant_current_frame(
-            surface, rng=rng, phi_eV=4.6, setpoint_A=1e-10, bias_V=0.5, nx=size, ny=size,
-            size_x_m=30e-9, size_y_m=30e-9, line_time_s=line_time, start_time=start,
-            run_t0=t0, drift_velocity_m_per_s=(1e-11, -0.5e-11),
-            feedback_time_constant_s=line_time / size, current_noise_fraction=0.02,
-            z_noise_m=2e-12, line_offsets_m=2e-11, scars=3, frame_id=f"f{k:04d}")
-        paths.append(write_raw_netcdf(raw, folder / f"f{k:04d}.nc"))
-    return paths
 
 
 def _run_frame(path: Path, cfg: Any
@@ -189,13 +166,13 @@ def main() -> None:
     ap.add_argument("--profile", action="store_true", help="cProfile one pass at each size")
     ap.add_argument("--profile-sort", default="cumulative", help="pstats sort key")
     ap.add_argument("--noise-free", action="store_true",
-                    help="the noise-free frames of bench_pipeline.make_frames")
+                    help="frames without noise, line offsets, scars or feedback lag")
     args = ap.parse_args()
 
     from pipeline.config import parse_config
 
     cfg = parse_config({})
-    frames = _noise_free_frames() if args.noise_free else make_frames
+    frames = functools.partial(_frame_maker(), noise=not args.noise_free)
     snap: dict[str, np.ndarray] = {}
     table: dict[int, dict[str, float]] = {}
     with tempfile.TemporaryDirectory() as tmp:
