@@ -21,7 +21,7 @@ import xarray as xr
 from pipeline.config import Config
 from pipeline.errors import IsogapError
 from pipeline.io.readers import read_file, read_header
-from pipeline.io.store import Failure, read_staged, write_staged
+from pipeline.io.store import Failure, read_staged, staged_header, write_staged
 from pipeline.model import BAD_PIXELS, parse_time
 from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, apparent_barrier_map, fit_curves
 from pipeline.stages.calibrate import (
@@ -80,6 +80,8 @@ class FrameSummary:
     step_height_m: float | None = None
     step_height_uncertainty_m: float | None = None
     failure: Failure | None = None
+    #: attributes and dimension sizes of the staged result, as read back from it
+    header: tuple[dict[str, Any], dict[str, int]] | None = None
 
 
 def _failure(path: str, stage: str, exc: BaseException) -> Failure:
@@ -198,6 +200,7 @@ def process_frame(
         ds.attrs["run_key"] = run_key
         stage = "stage-write"
         out.staged = str(write_staged(store, "frames", ds.attrs["frame_id"], ds))
+        out.header = staged_header(out.staged)  # here, so the scheduler need not read it
         _summarise(ds, out)
     except Exception as exc:
         out.failure = _failure(path, stage, exc)
@@ -226,7 +229,7 @@ def register_pair(
     """Drift shift between two staged, levelled frames; for a pair of one area scanned in
     opposite slow directions also the drift velocity within one frame time."""
     try:
-        a, b = read_staged(previous), read_staged(current)
+        a, b = (read_staged(p, ("height", "flags")) for p in (previous, current))
         up = config.drift.upsample_factor
         shift = measure_frame_shift(a, b, upsample_factor=up)
     except IsogapError as exc:  # one pair that cannot be measured is left out, with the reason

@@ -48,8 +48,8 @@ from pipeline.io.store import (
     StoreLock,
     check_writable,
     read_staged,
-    staged_attrs,
     staged_frames,
+    staged_header,
     staging_dir,
     write_store,
 )
@@ -181,17 +181,20 @@ def _run(
     # 3. frames (resume: reuse staged results whose source and run key are unchanged)
     staged = staged_frames(store, "frames")
     todo, reused = [], []
+    headers: dict[str, tuple[dict[str, Any], dict[str, int]]] = {}  # of every staged frame
     for s in frames:
         fid = str(s.attrs["frame_id"])
         old = staged.get(fid)
         if old is not None:
             try:
-                a = staged_attrs(old)
+                head = staged_header(old)
             except IsogapError:
-                a = {}
+                head = ({}, {})
+            a = head[0]
             if (a.get("source_sha256") == s.sha256 and a.get("run_key") == run_key
                     and str(a.get("source_sidecar_sha256", "")) == s.sidecar_sha256):
                 reused.append(str(old))
+                headers[fid] = head
                 continue
         todo.append(s)
     summary.n_reused = len(reused)
@@ -204,7 +207,8 @@ def _run(
             done.append(res)
     staged_paths = {Path(r.staged).stem: r.staged for r in done}
     staged_paths.update({Path(p).stem: p for p in reused})
-    starts = {fid: str(staged_attrs(p)["start_time"]) for fid, p in staged_paths.items()}
+    headers.update({Path(r.staged).stem: r.header for r in done if r.header is not None})
+    starts = {fid: str(headers[fid][0]["start_time"]) for fid in staged_paths}
     order = sorted(staged_paths, key=lambda fid: (parse_time(starts[fid]), fid))
 
     run_attrs: dict[str, Any] = {
@@ -230,7 +234,8 @@ def _run(
     drift_model = None
     run_t0 = starts[order[0]] if order else ""
     if config.drift.enabled and len(order) >= 2:
-        drift_model, dtab = _drift(executor, order, staged_paths, run_t0, config, emit)
+        drift_model, dtab = _drift(executor, order, staged_paths, headers, run_t0, config,
+                                   emit)
         if dtab is not None:
             run_tables.append(dtab)
             run_attrs.update({k: v for k, v in dtab.attrs.items()})
@@ -241,7 +246,7 @@ def _run(
     z_scale, z_unc = 1.0, 0.0
     if config.calibrate.known_step_height_m:
         # from every frame of the run, recomputed or reused from an earlier run
-        heads = [staged_attrs(staged_paths[f]) for f in order]
+        heads = [headers[f][0] for f in order]
         steps = [(float(a["step_height_m"]), float(a.get("step_height_uncertainty_m", np.nan)))
                  for a in heads if np.isfinite(float(a.get("step_height_m", np.nan)))]
         if steps:

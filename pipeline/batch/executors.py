@@ -27,8 +27,6 @@ def _indexed(fn: Callable[..., Any], index: int, *args: Any) -> tuple[int, Any]:
 class SerialExecutor:
     """Runs tasks one after another in this process."""
 
-    """Runs tasks one after another in this process."""
-
     name = "serial"
     workers = 1
 

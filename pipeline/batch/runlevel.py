@@ -19,7 +19,6 @@ from pipeline.batch.events import Event, run_pass
 from pipeline.config import Config
 from pipeline.errors import ConfigError, IsogapError
 from pipeline.io.readers import read_file
-from pipeline.io.store import staged_header
 from pipeline.model import parse_time
 from pipeline.stages.barrier import (
     WorkFunctionEstimate,
@@ -139,12 +138,17 @@ def lateral_scale(
 
 
 def drift_model(
-    executor: Any, order: list[str], staged: dict[str, str], run_t0: str, config: Config,
-    emit: Callable[[Event], None],
+    executor: Any, order: list[str], staged: dict[str, str],
+    staged_headers: dict[str, tuple[dict[str, Any], dict[str, int]]], run_t0: str,
+    config: Config, emit: Callable[[Event], None],
 ) -> tuple[DriftModel | None, xr.Dataset | None]:
-    """Register compatible frame pairs (in parallel) and fit the run's drift model."""
+    """Register compatible frame pairs (in parallel) and fit the run's drift model.
+
+    ``staged`` and ``staged_headers`` give each staged frame's path and its attributes and
+    dimension sizes (:func:`pipeline.io.store.staged_header`), by frame id.
+    """
     d = config.drift
-    headers = [staged_header(staged[f]) for f in order]
+    headers = [staged_headers[f] for f in order]
     frames = [{**a, "nx": n["x"], "ny": n["y"]} for a, n in headers]
     # shape-only stand-ins carry what the frame clock needs (sizes + attrs), not the maps
     stand_ins = [xr.Dataset(coords={"y": np.zeros(n["y"]), "x": np.zeros(n["x"])}, attrs=a)

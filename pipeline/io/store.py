@@ -32,12 +32,14 @@ from pathlib import Path
 from typing import Any
 
 import h5netcdf
+import h5py
 import numpy as np
 import xarray as xr
 from xarray.backends import H5NetCDFStore
 
 from pipeline._version import __version__
 from pipeline.errors import StoreError, StoreLockedError
+from pipeline.io.h5grid import is_grid, read_attrs, read_grid_file, write_grid, write_grid_file
 from pipeline.model import sanitize_id
 
 __all__ = [
@@ -237,7 +239,11 @@ def _atomic_netcdf(ds: xr.Dataset, path: Path) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = _temporary(path)
     try:
-        netcdf_safe(ds).to_netcdf(tmp, engine="h5netcdf")
+        safe = netcdf_safe(ds)
+        if is_grid(safe):  # frames: the fast h5py path, same layout as xarray's
+            write_grid_file(tmp, safe)
+        else:
+            safe.to_netcdf(tmp, engine="h5netcdf")
         _fsync_replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)
@@ -250,12 +256,21 @@ def write_staged(store: str | os.PathLike[str], kind: str, name: str, ds: xr.Dat
     return _atomic_netcdf(ds, staging_dir(store) / kind / f"{sanitize_id(name)}.nc")
 
 
-def read_staged(path: str | os.PathLike[str]) -> xr.Dataset:
-    """Load a staged result fully into memory (the file is closed on return)."""
+def read_staged(path: str | os.PathLike[str], variables: Iterable[str] | None = None
+                ) -> xr.Dataset:
+    """Load a staged result fully into memory (the file is closed on return).
+
+    ``variables`` limits the data variables read from a staged frame (coordinates and
+    attributes always come along).
+    """
     try:
-        with xr.open_dataset(path, engine="h5netcdf") as ds:
-            return ds.load()
-    except (OSError, ValueError) as exc:
+        try:
+            return read_grid_file(path, variables)
+        except ValueError:  # not a grid: through xarray
+            with xr.open_dataset(path, engine="h5netcdf") as ds:
+                ds = ds.load()
+            return ds if variables is None else ds[list(variables)]
+    except (OSError, ValueError, KeyError) as exc:
         raise StoreError(f"staged result {path} is unreadable ({exc})") from None
 
 
@@ -267,10 +282,10 @@ def staged_attrs(path: str | os.PathLike[str]) -> dict[str, Any]:
 def staged_header(path: str | os.PathLike[str]) -> tuple[dict[str, Any], dict[str, int]]:
     """Global attributes and dimension sizes of a staged result, without reading its arrays."""
     try:
-        with h5netcdf.File(path, "r") as handle:
-            attrs = {k: (v.decode() if isinstance(v, bytes) else v)
-                     for k, v in handle.attrs.items()}
-            sizes = {str(k): int(v.size) for k, v in handle.dimensions.items()}
+        with h5py.File(path, "r") as handle:
+            attrs = read_attrs(handle.attrs)
+            sizes = {name: int(obj.shape[0]) for name, obj in handle.items()
+                     if obj.attrs.get("CLASS") == b"DIMENSION_SCALE"}
     except (OSError, ValueError) as exc:
         raise StoreError(f"staged result {path} is unreadable ({exc})") from None
     return attrs, sizes
@@ -334,13 +349,6 @@ def write_store(
                 "history": f"{now}: {history}".strip() if history else f"{now}: isogap",
             })
             handle.create_group("frames")
-            seen: set[str] = set()
-            for ds in frames:
-                fid = sanitize_id(ds.attrs.get("frame_id", "frame"))
-                if fid in seen:
-                    raise StoreError(f"store {path}: two frames have the id {fid!r}")
-                seen.add(fid)
-                _dump_group(handle, f"frames/{fid}", ds)
             _dump_group(handle, "run", run)
             for name, ds in extra_groups:
                 parts = [sanitize_id(p) for p in name.split("/")]
@@ -348,6 +356,24 @@ def write_store(
                     handle.create_group(parts[0])
                 _dump_group(handle, "/".join(parts), ds)
             _dump_group(handle, "failures", _failures_dataset(failures))
+        # the frames, the bulk of the store, through plain h5py in the same layout (h5grid.py);
+        # anything unusual (no coordinates, say) through xarray afterwards
+        others: list[tuple[str, xr.Dataset]] = []
+        with h5py.File(tmp, "a") as handle:
+            group = handle["frames"]
+            for ds in frames:
+                fid = sanitize_id(ds.attrs.get("frame_id", "frame"))
+                if fid in group or any(fid == o for o, _ in others):
+                    raise StoreError(f"store {path}: two frames have the id {fid!r}")
+                safe = netcdf_safe(ds)
+                if is_grid(safe):
+                    write_grid(group.create_group(fid), safe)
+                else:
+                    others.append((fid, safe))
+        if others:
+            with h5netcdf.File(tmp, "a") as handle:
+                for fid, ds in others:
+                    _dump_group(handle, f"frames/{fid}", ds)
         _fsync_replace(tmp, path)
     except OSError as exc:  # e.g. a full disk: the previous store is still in place
         tmp.unlink(missing_ok=True)

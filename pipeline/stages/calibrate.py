@@ -23,7 +23,6 @@ import xarray as xr
 from numpy.typing import ArrayLike
 from scipy import fft as sfft
 from scipy import ndimage
-from scipy.signal import windows
 
 from pipeline.errors import ProcessingError
 from pipeline.model import BAD_PIXELS, stage
@@ -420,6 +419,8 @@ def measure_lattice(
     coef, *_ = np.linalg.lstsq(des, h[yy, xx], rcond=None)
     img = np.zeros_like(h)
     img[yy, xx] = h[yy, xx] - des @ coef
+    from scipy.signal import windows  # here: scipy.signal takes 0.3 s to import
+
     win = np.outer(windows.hann(ny, sym=False), windows.hann(nx, sym=False))
     img *= win
     power = np.abs(sfft.rfft2(img)) ** 2

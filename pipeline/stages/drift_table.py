@@ -13,7 +13,6 @@ from typing import Any
 
 import numpy as np
 import xarray as xr
-from scipy import stats
 
 from pipeline.errors import MissingAttributeError, ProcessingError
 from pipeline.stages.drift_model import DriftModel, m_per_s_to_nm_per_min
@@ -72,6 +71,8 @@ def fit_z_drift(
     ok = np.isfinite(t) & np.isfinite(h)
     if ok.sum() < 3 or np.ptp(t[ok]) <= 0:
         return ZDrift(math.nan, math.nan, math.nan, int(ok.sum()))
+    from scipy import stats  # here: scipy.stats takes 0.2 s to import
+
     res = stats.theilslopes(h[ok], t[ok], alpha=0.6827)
     return ZDrift(float(res.slope), float(0.5 * (res.high_slope - res.low_slope)),
                   float(res.intercept), int(ok.sum()))
