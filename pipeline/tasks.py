@@ -21,7 +21,8 @@ import xarray as xr
 from pipeline.config import Config
 from pipeline.errors import IsogapError
 from pipeline.io.readers import read_file, read_header
-from pipeline.io.store import Failure, read_staged, staged_header, write_staged
+from pipeline.io.staging import read_staged, staged_header, write_staged
+from pipeline.io.store import Failure
 from pipeline.model import BAD_PIXELS, parse_time
 from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, apparent_barrier_map, fit_curves
 from pipeline.stages.calibrate import (

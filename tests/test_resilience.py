@@ -17,7 +17,8 @@ import pytest
 from pipeline.batch import run_batch
 from pipeline.config import parse_config
 from pipeline.follow import follow_folder
-from pipeline.io.store import open_store, staged_frames
+from pipeline.io.staging import staged_frames
+from pipeline.io.store import open_store
 
 
 @pytest.mark.slow

@@ -6,11 +6,13 @@ The passes of a run, each a set of independent tasks carrying file paths (DESIGN
 2. the run's **work function** from the curve fits (or the configured fixed value);
 3. **frames**: height → levelling → quality, each result staged as its own file;
 4. **drift**: consecutive staged frames registered pairwise, a drift model fitted;
-5. **finalise**: drift corrected inside each frame, z scale from known steps applied;
+5. **finalise**: drift corrected inside each frame, z scale from known steps applied; each
+   finished frame is added to the new store (built under a temporary name) while the workers
+   finish the others;
 6. **lattice** (when a lattice constant is configured): lateral scale from the atomically
-   resolved, drift-corrected frames;
-7. **commit**: the store rebuilt from the staged files through one handle (lateral scale
-   applied to the coordinates on the way), replaced atomically.
+   resolved, drift-corrected frames; the frames are then added with it applied to their
+   coordinates;
+7. **commit**: the run, map and failure groups written, the store replaced atomically.
 
 Workers read their own input and return small summaries; only this process writes the store.
 Memory therefore depends on frame size × workers, not on the length of the run. Staged results
@@ -25,7 +27,7 @@ import json
 import logging
 import os
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -43,15 +45,13 @@ from pipeline.batch.runlevel import work_function as _work_function
 from pipeline.config import Config, config_sha256, dump_toml
 from pipeline.errors import ConfigError, IsogapError
 from pipeline.io.readers import find_inputs
+from pipeline.io.staging import read_staged, staged_frames, staged_header, staging_dir
 from pipeline.io.store import (
     Failure,
+    StoreBuilder,
     StoreLock,
     check_writable,
-    read_staged,
-    staged_frames,
-    staged_header,
-    staging_dir,
-    write_store,
+    remove_stale_temporaries,
 )
 from pipeline.model import parse_time
 from pipeline.stages.calibrate import scale_lateral, z_scale_from_steps
@@ -112,6 +112,8 @@ def run_batch(
     summary = RunSummary(store=store, n_inputs=len(inputs))
     check_writable(store, expected_bytes=sum(p.stat().st_size for p in inputs if p.is_file()))
     with StoreLock(store):
+        for tmp in remove_stale_temporaries(store):
+            log.info("removed %s, left by a writer that was stopped", tmp)
         executor = make_executor(config)
         try:
             _run(executor, inputs, store, config, summary, emit, history, extra_run_attrs or {})
@@ -257,17 +259,42 @@ def _run(
         else:
             emit(Event("warning", message="no steps measured: z scale not calibrated"))
     extra = {"work_function_eV": phi}
+    with StoreBuilder(store, title=config.run.title, history=history or
+                      f"isogap process ({datetime.now(UTC):%Y-%m-%d})") as builder:
+        _finish(executor, builder, order, staged_paths, config, drift_model, run_t0,
+                (z_scale, z_unc), extra, run_attrs, summary, fail, emit)
+        run_attrs.update(extra_run_attrs)
+        emit(Event("pass", name="writing store", total=1))
+        run_ds = xr.merge(run_tables, combine_attrs="drop") if run_tables else xr.Dataset()
+        run_ds.attrs = run_attrs
+        builder.commit(run=run_ds, failures=summary.failures,
+                       extra_groups=_barrier_maps(surveys, emit).items())
+    emit(Event("advance", name="writing store"))
+
+
+def _finish(
+    executor: Any, builder: StoreBuilder, order: list[str], staged_paths: dict[str, str],
+    config: Config, drift_model: Any, run_t0: str, z_scale: tuple[float, float],
+    extra: dict[str, Any], run_attrs: dict[str, Any], summary: RunSummary,
+    fail: Callable[[Failure], None], emit: Callable[[Event], None],
+) -> None:
+    """Finishing pass (drift inside frames, z scale), then the lateral scale; every finished
+    frame goes into ``builder`` as it arrives, or, when the lateral scale is still to be
+    measured from the finished frames, once it is known."""
     finals: list[str] = []
     summary.frames = []
-    jobs = [(staged_paths[f], str(store), config, drift_model
-             if config.drift.correct_within_frames else None, run_t0, z_scale, z_unc, extra)
+    jobs = [(staged_paths[f], str(builder.path), config, drift_model
+             if config.drift.correct_within_frames else None, run_t0, *z_scale, extra)
             for f in order]
+    calibrate_lateral = bool(config.calibrate.lattice_constant_m)
     for _, res in run_pass(executor, "finishing", tasks.finalize_frame, jobs, emit):
         if res.failure:
             fail(res.failure)
-        else:
-            finals.append(res.staged)
-            summary.frames.append(res)
+            continue
+        finals.append(res.staged)
+        summary.frames.append(res)
+        if not calibrate_lateral:  # written while the workers finish the other frames
+            builder.add_frame(read_staged(res.staged))
     summary.n_frames = len(finals)
     summary.n_ok = sum(1 for r in summary.frames if r.status == "ok")
     summary.n_flagged = sum(1 for r in summary.frames if r.status != "ok")
@@ -276,26 +303,29 @@ def _run(
                                           float(run_attrs["drift_velocity_y_m_per_s"]))
     # lateral scale from the atomically resolved frames, measured after the drift correction
     # (drift shears a frame) and applied to the coordinates as the store is written
-    lateral = None
-    if config.calibrate.lattice_constant_m and finals:
-        lateral = _lateral_scale(executor, finals, config, emit)
+    if not calibrate_lateral:
+        return
+    lateral = _lateral_scale(executor, finals, config, emit) if finals else None
+    if lateral is not None:
+        run_attrs.update(lateral)
+        for axis in ("x", "y"):  # the drift was measured in nominal lengths
+            factor = lateral[f"lateral_scale_{axis}"]
+            for name in (f"drift_velocity_{axis}_m_per_s",
+                         f"drift_velocity_uncertainty_{axis}_m_per_s",
+                         f"drift_velocity_{axis}_nm_per_min"):
+                if name in run_attrs:
+                    run_attrs[name] = float(run_attrs[name]) * factor
+    for p in finals:
+        ds = read_staged(p)
         if lateral is not None:
-            run_attrs.update(lateral)
-            for axis in ("x", "y"):  # the drift was measured in nominal lengths
-                factor = lateral[f"lateral_scale_{axis}"]
-                for name in (f"drift_velocity_{axis}_m_per_s",
-                             f"drift_velocity_uncertainty_{axis}_m_per_s",
-                             f"drift_velocity_{axis}_nm_per_min"):
-                    if name in run_attrs:
-                        run_attrs[name] = float(run_attrs[name]) * factor
-    run_attrs.update(extra_run_attrs)
+            ds = scale_lateral(ds, scale_x=lateral["lateral_scale_x"],
+                               scale_y=lateral["lateral_scale_y"])
+        builder.add_frame(ds)
 
-    # 6. commit
-    emit(Event("pass", name="writing store", total=1))
-    run_ds = xr.merge(run_tables, combine_attrs="drop") if run_tables else xr.Dataset()
-    run_ds.attrs = run_attrs
-    rank = {fid: k for k, fid in enumerate(order)}
-    finals_sorted = sorted(finals, key=lambda p: rank[Path(p).stem])
+
+def _barrier_maps(surveys: list[tasks.SurveyResult], emit: Callable[[Event], None]
+                  ) -> dict[str, xr.Dataset]:
+    """The apparent-barrier maps of the run's curve grids, by group name."""
     maps: dict[str, xr.Dataset] = {}
     for s in surveys:
         if s.barrier_map is None:
@@ -307,15 +337,4 @@ def _run(
                        "'curve_set_id')"))
             continue
         maps[name] = s.barrier_map
-    def final_frames() -> Iterator[xr.Dataset]:
-        for p in finals_sorted:
-            ds = read_staged(p)
-            if lateral is not None:
-                ds = scale_lateral(ds, scale_x=lateral["lateral_scale_x"],
-                                   scale_y=lateral["lateral_scale_y"])
-            yield ds
-
-    write_store(store, frames=final_frames(), run=run_ds,
-                failures=summary.failures, title=config.run.title, extra_groups=maps.items(),
-                history=history or f"isogap process ({datetime.now(UTC):%Y-%m-%d})")
-    emit(Event("advance", name="writing store"))
+    return maps

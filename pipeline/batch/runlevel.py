@@ -145,7 +145,7 @@ def drift_model(
     """Register compatible frame pairs (in parallel) and fit the run's drift model.
 
     ``staged`` and ``staged_headers`` give each staged frame's path and its attributes and
-    dimension sizes (:func:`pipeline.io.store.staged_header`), by frame id.
+    dimension sizes (:func:`pipeline.io.staging.staged_header`), by frame id.
     """
     d = config.drift
     headers = [staged_headers[f] for f in order]

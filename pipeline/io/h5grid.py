@@ -13,7 +13,7 @@ variables, non-string scalar attributes as 1-element arrays), so xarray's ``open
 engine="h5netcdf")`` reads the result exactly as if xarray had written it. :func:`read_grid`
 returns what xarray would return for such a group (tested both ways, ``assert_identical``).
 
-Attribute values must already be netCDF-safe (:func:`pipeline.io.store.netcdf_safe`). The reader
+Attribute values must already be netCDF-safe (:func:`pipeline.io.staging.netcdf_safe`). The reader
 refuses (``ValueError``) anything xarray would decode -- packed or masked variables, dimensions
 without coordinates, strings -- so a caller can fall back to xarray for those.
 """

@@ -1,4 +1,4 @@
-"""The HDF5 output store (DESIGN.md §4): staging, atomic commit, write lock, read-back.
+"""The HDF5 output store (DESIGN.md §4): building and atomic commit, write lock, read-back.
 
 Layout of a store file (netCDF4-compatible; every group opens with
 ``xarray.open_dataset(store, group=..., engine="h5netcdf")``)::
@@ -6,14 +6,15 @@ Layout of a store file (netCDF4-compatible; every group opens with
     /                 Conventions, title, software, created, history
     /frames/<id>      height, height_uncertainty, flags (+ x, y) and the frame's attrs
     /run              run-level attrs and tables (curve fits, drift series)
+    /maps/<id>        apparent-barrier maps
     /failures         one record per input that could not be processed
 
-Crash safety (DESIGN.md §7): each processed frame is first *staged* as its own small netCDF file
-in ``<store>.parts/frames/`` (written under a temporary name, fsynced and ``os.replace``-d into
-place), so a killed run keeps every finished frame. The store itself is always built under a
-temporary name through one open ``h5netcdf.File`` handle and then atomically replaces the
-previous store, so a crash at any moment leaves the previous store intact. An ``flock`` on
-``<store>.lock`` refuses a second writer; the file names the holder (pid, host, start time).
+Crash safety (DESIGN.md §7): finished frames are staged first (:mod:`pipeline.io.staging`). The
+store itself is always built under a temporary name (:class:`StoreBuilder`: frames are added as
+they come, through plain h5py in netCDF-4 layout, :mod:`pipeline.io.h5grid`; the run, map and
+failure groups through xarray at the end) and then atomically replaces the previous store, so a
+crash at any moment leaves the previous store intact. An ``flock`` on ``<store>.lock`` refuses a
+second writer; the file names the holder (pid, host, start time).
 """
 
 from __future__ import annotations
@@ -24,8 +25,7 @@ import os
 import shutil
 import socket
 import tempfile
-import uuid
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -39,22 +39,18 @@ from xarray.backends import H5NetCDFStore
 
 from pipeline._version import __version__
 from pipeline.errors import StoreError, StoreLockedError
-from pipeline.io.h5grid import is_grid, read_attrs, read_grid_file, write_grid, write_grid_file
+from pipeline.io.h5grid import is_grid, write_grid
+from pipeline.io.staging import fsync_replace, netcdf_safe, temporary_path
 from pipeline.model import sanitize_id
 
 __all__ = [
     "Failure",
     "Store",
+    "StoreBuilder",
     "StoreLock",
     "check_writable",
-    "netcdf_safe",
     "open_store",
-    "read_staged",
-    "staged_attrs",
-    "staged_frames",
-    "staged_header",
-    "staging_dir",
-    "write_staged",
+    "remove_stale_temporaries",
     "write_store",
 ]
 
@@ -69,54 +65,6 @@ class Failure:
     file: str
     stage: str
     message: str
-
-
-# --------------------------------------------------------------------------------------------
-# attribute hygiene
-# --------------------------------------------------------------------------------------------
-
-
-def _safe_attr(value: Any) -> Any:
-    if value is None:
-        return None
-    if isinstance(value, bool | np.bool_):
-        return int(value)
-    if isinstance(value, str | int | float | np.integer | np.floating):
-        return value
-    if isinstance(value, np.ndarray):
-        if value.dtype == bool:
-            return value.astype(np.uint8)
-        if value.dtype.kind in "OU":
-            return json.dumps([str(v) for v in value.tolist()])
-        return value
-    if isinstance(value, datetime):
-        return value.isoformat()
-    if isinstance(value, Mapping | list | tuple):
-        try:
-            arr = np.asarray(value)
-            if arr.dtype.kind in "iuf" and arr.ndim == 1 and arr.size:
-                return arr
-        except (ValueError, TypeError):
-            pass
-        return json.dumps(value, default=str)
-    return str(value)
-
-
-def netcdf_safe(ds: xr.Dataset) -> xr.Dataset:
-    """Copy of ``ds`` whose attributes netCDF can hold (strings, numbers, numeric arrays).
-
-    ``None`` values are dropped, booleans become integers, mappings and lists become JSON text.
-    """
-    out = ds.copy()
-    out.attrs = {k: v for k, v in ((k, _safe_attr(v)) for k, v in ds.attrs.items())
-                 if v is not None}
-    for name in out.variables:
-        var = out[name]
-        var.attrs = {k: v for k, v in ((k, _safe_attr(v)) for k, v in var.attrs.items())
-                     if v is not None}
-        if var.dtype == bool:
-            out[name] = var.astype(np.uint8)
-    return out
 
 
 # --------------------------------------------------------------------------------------------
@@ -207,100 +155,9 @@ def check_writable(store: str | os.PathLike[str], *, expected_bytes: int = 0) ->
                          f"{need / 1e6:.0f} MB needed")
 
 
-# --------------------------------------------------------------------------------------------
-# staging
-# --------------------------------------------------------------------------------------------
-
-
-def staging_dir(store: str | os.PathLike[str]) -> Path:
-    """Folder of a store's staged per-frame results (``<store>.parts``)."""
-    store = Path(store)
-    return store.with_name(store.name + ".parts")
-
-
-def _fsync_replace(tmp: Path, path: Path) -> None:
-    """Make ``tmp`` durable, rename it to ``path``, and make the rename durable too."""
-    with open(tmp, "rb+") as fh:
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
-    dir_fd = os.open(path.parent, os.O_RDONLY)
-    try:
-        os.fsync(dir_fd)
-    finally:
-        os.close(dir_fd)
-
-
-def _temporary(path: Path) -> Path:
-    """A hidden temporary name beside ``path``, unique across processes and hosts."""
-    return path.with_name(f".{path.name}.{uuid.uuid4().hex[:12]}.tmp")
-
-
-def _atomic_netcdf(ds: xr.Dataset, path: Path) -> Path:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = _temporary(path)
-    try:
-        safe = netcdf_safe(ds)
-        if is_grid(safe):  # frames: the fast h5py path, same layout as xarray's
-            write_grid_file(tmp, safe)
-        else:
-            safe.to_netcdf(tmp, engine="h5netcdf")
-        _fsync_replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    return path
-
-
-def write_staged(store: str | os.PathLike[str], kind: str, name: str, ds: xr.Dataset) -> Path:
-    """Stage one result (``kind`` = ``"frames"``, ``"curves"``, ...) atomically; return its path."""
-    return _atomic_netcdf(ds, staging_dir(store) / kind / f"{sanitize_id(name)}.nc")
-
-
-def read_staged(path: str | os.PathLike[str], variables: Iterable[str] | None = None
-                ) -> xr.Dataset:
-    """Load a staged result fully into memory (the file is closed on return).
-
-    ``variables`` limits the data variables read from a staged frame (coordinates and
-    attributes always come along).
-    """
-    try:
-        try:
-            return read_grid_file(path, variables)
-        except ValueError:  # not a grid: through xarray
-            with xr.open_dataset(path, engine="h5netcdf") as ds:
-                ds = ds.load()
-            return ds if variables is None else ds[list(variables)]
-    except (OSError, ValueError, KeyError) as exc:
-        raise StoreError(f"staged result {path} is unreadable ({exc})") from None
-
-
-def staged_attrs(path: str | os.PathLike[str]) -> dict[str, Any]:
-    """The global attributes of a staged result, without reading its arrays."""
-    return staged_header(path)[0]
-
-
-def staged_header(path: str | os.PathLike[str]) -> tuple[dict[str, Any], dict[str, int]]:
-    """Global attributes and dimension sizes of a staged result, without reading its arrays."""
-    try:
-        with h5py.File(path, "r") as handle:
-            attrs = read_attrs(handle.attrs)
-            sizes = {name: int(obj.shape[0]) for name, obj in handle.items()
-                     if obj.attrs.get("CLASS") == b"DIMENSION_SCALE"}
-    except (OSError, ValueError) as exc:
-        raise StoreError(f"staged result {path} is unreadable ({exc})") from None
-    return attrs, sizes
-
-
-def staged_frames(store: str | os.PathLike[str], kind: str = "frames") -> dict[str, Path]:
-    """Staged results of one kind, by name."""
-    folder = staging_dir(store) / kind
-    if not folder.is_dir():
-        return {}
-    return {p.stem: p for p in sorted(folder.glob("*.nc")) if not p.name.startswith(".")}
-
 
 # --------------------------------------------------------------------------------------------
-# the store
+# building the store
 # --------------------------------------------------------------------------------------------
 
 
@@ -320,6 +177,130 @@ def _failures_dataset(failures: Sequence[Failure]) -> xr.Dataset:
     )
 
 
+def remove_stale_temporaries(store: str | os.PathLike[str]) -> list[Path]:
+    """Remove the temporary store files a killed writer left beside ``store``.
+
+    Call only while holding the store's :class:`StoreLock`: then no live writer owns one.
+    Returns the removed paths.
+    """
+    store = Path(store)
+    removed = []
+    for tmp in store.parent.glob(f".{store.name}.*.tmp"):
+        tmp.unlink(missing_ok=True)
+        removed.append(tmp)
+    return removed
+
+
+class StoreBuilder:
+    """A new store built under a temporary name, then committed atomically.
+
+    Frames are added one at a time (:meth:`add_frame`, memory stays at one frame) while the
+    rest of a run is still working; :meth:`commit` adds the run, map and failure groups and
+    replaces the store at ``path``; :meth:`abort` (or leaving a ``with`` block with an error)
+    removes the temporary file and leaves any previous store untouched.
+
+    Examples
+    --------
+    >>> with StoreBuilder(path, title="night 3") as builder:  # doctest: +SKIP
+    ...     for ds in frames:
+    ...         builder.add_frame(ds)
+    ...     builder.commit(run=run_ds, failures=failures)
+    """
+
+    def __init__(self, path: str | os.PathLike[str], *, title: str = "isogap run",
+                 history: str = "") -> None:
+        self.path = Path(path)
+        self.tmp = temporary_path(self.path)
+        now = datetime.now(UTC).isoformat(timespec="seconds")
+        self._others: list[tuple[str, xr.Dataset]] = []
+        self._ids: set[str] = set()
+        try:
+            with h5netcdf.File(self.tmp, "w") as handle:
+                handle.attrs.update({
+                    "Conventions": "CF-1.10",
+                    "title": title,
+                    "software": f"isogap {__version__}",
+                    "created": now,
+                    "history": f"{now}: {history}".strip() if history else f"{now}: isogap",
+                })
+                handle.create_group("frames")
+            self._h5: h5py.File | None = h5py.File(self.tmp, "a")
+        except BaseException as exc:
+            self.tmp.unlink(missing_ok=True)
+            if isinstance(exc, OSError):
+                raise self._error(exc) from None
+            raise
+
+    def _error(self, exc: OSError) -> StoreError:
+        return StoreError(f"store {self.path}: cannot be written ({exc.strerror or exc}); the "
+                          "previous store, if any, is unchanged and the staged parts are kept "
+                          "for a rerun")
+
+    def add_frame(self, ds: xr.Dataset) -> None:
+        """Add one processed frame as ``frames/<frame_id>``."""
+        if self._h5 is None:
+            raise StoreError(f"store {self.path}: already committed or aborted")
+        fid = sanitize_id(ds.attrs.get("frame_id", "frame"))
+        if fid in self._ids:
+            self.abort()
+            raise StoreError(f"store {self.path}: two frames have the id {fid!r}")
+        self._ids.add(fid)
+        safe = netcdf_safe(ds)
+        try:
+            if is_grid(safe):
+                write_grid(self._h5["frames"].create_group(fid), safe)
+            else:  # anything unusual (no coordinates, say) through xarray at the end
+                self._others.append((fid, safe))
+        except OSError as exc:  # e.g. a full disk
+            self.abort()
+            raise self._error(exc) from None
+
+    def commit(self, *, run: xr.Dataset, failures: Sequence[Failure] = (),
+               extra_groups: Iterable[tuple[str, xr.Dataset]] = ()) -> Path:
+        """Write the run, map (``extra_groups``: ``(group path, dataset)`` pairs, e.g.
+        ``("maps/grid1", ds)``) and failure groups and replace the store atomically."""
+        if self._h5 is None:
+            raise StoreError(f"store {self.path}: already committed or aborted")
+        try:
+            self._h5.close()
+            self._h5 = None
+            with h5netcdf.File(self.tmp, "a") as handle:
+                for fid, ds in self._others:
+                    _dump_group(handle, f"frames/{fid}", ds)
+                _dump_group(handle, "run", run)
+                for name, ds in extra_groups:
+                    parts = [sanitize_id(p) for p in name.split("/")]
+                    if len(parts) > 1 and parts[0] not in handle.groups:
+                        handle.create_group(parts[0])
+                    _dump_group(handle, "/".join(parts), ds)
+                _dump_group(handle, "failures", _failures_dataset(failures))
+            fsync_replace(self.tmp, self.path)
+        except OSError as exc:  # e.g. a full disk: the previous store is still in place
+            self.abort()
+            raise self._error(exc) from None
+        except BaseException:
+            self.abort()
+            raise
+        return self.path
+
+    def abort(self) -> None:
+        """Drop the temporary file; any previous store stays as it was."""
+        if self._h5 is not None:
+            try:
+                self._h5.close()
+            except OSError:
+                pass
+            self._h5 = None
+        self.tmp.unlink(missing_ok=True)
+
+    def __enter__(self) -> StoreBuilder:
+        return self
+
+    def __exit__(self, exc_type: object, *exc: object) -> None:
+        if exc_type is not None or self._h5 is not None:  # an error, or never committed
+            self.abort()
+
+
 def write_store(
     path: str | os.PathLike[str],
     *,
@@ -330,60 +311,17 @@ def write_store(
     history: str = "",
     extra_groups: Iterable[tuple[str, xr.Dataset]] = (),
 ) -> Path:
-    """Build the store under a temporary name through one open handle, then replace atomically.
+    """Build a whole store at once (a :class:`StoreBuilder` fed from ``frames``).
 
     ``frames`` may be a lazy iterable (e.g. reading staged files one at a time), so memory stays
     at one frame. Frame groups are named after their sanitised ``frame_id``. ``extra_groups``
     are further ``(group path, dataset)`` pairs, e.g. ``("maps/grid1", ds)``.
     """
-    path = Path(path)
-    tmp = _temporary(path)
-    now = datetime.now(UTC).isoformat(timespec="seconds")
-    try:
-        with h5netcdf.File(tmp, "w") as handle:
-            handle.attrs.update({
-                "Conventions": "CF-1.10",
-                "title": title,
-                "software": f"isogap {__version__}",
-                "created": now,
-                "history": f"{now}: {history}".strip() if history else f"{now}: isogap",
-            })
-            handle.create_group("frames")
-            _dump_group(handle, "run", run)
-            for name, ds in extra_groups:
-                parts = [sanitize_id(p) for p in name.split("/")]
-                if len(parts) > 1 and parts[0] not in handle.groups:
-                    handle.create_group(parts[0])
-                _dump_group(handle, "/".join(parts), ds)
-            _dump_group(handle, "failures", _failures_dataset(failures))
-        # the frames, the bulk of the store, through plain h5py in the same layout (h5grid.py);
-        # anything unusual (no coordinates, say) through xarray afterwards
-        others: list[tuple[str, xr.Dataset]] = []
-        with h5py.File(tmp, "a") as handle:
-            group = handle["frames"]
-            for ds in frames:
-                fid = sanitize_id(ds.attrs.get("frame_id", "frame"))
-                if fid in group or any(fid == o for o, _ in others):
-                    raise StoreError(f"store {path}: two frames have the id {fid!r}")
-                safe = netcdf_safe(ds)
-                if is_grid(safe):
-                    write_grid(group.create_group(fid), safe)
-                else:
-                    others.append((fid, safe))
-        if others:
-            with h5netcdf.File(tmp, "a") as handle:
-                for fid, ds in others:
-                    _dump_group(handle, f"frames/{fid}", ds)
-        _fsync_replace(tmp, path)
-    except OSError as exc:  # e.g. a full disk: the previous store is still in place
-        tmp.unlink(missing_ok=True)
-        raise StoreError(f"store {path}: cannot be written ({exc.strerror or exc}); the "
-                         "previous store, if any, is unchanged and the staged parts are kept "
-                         "for a rerun") from None
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-    return path
+    with StoreBuilder(path, title=title, history=history) as builder:
+        for ds in frames:
+            builder.add_frame(ds)
+        return builder.commit(run=run, failures=failures, extra_groups=extra_groups)
+
 
 
 class Store:

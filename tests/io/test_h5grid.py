@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 
 from pipeline.io.h5grid import is_grid, read_grid_file, write_grid_file
 from pipeline.io.netcdf import NETCDF_READER
-from pipeline.io.store import netcdf_safe
+from pipeline.io.staging import netcdf_safe
 
 
 def _xr_read(path) -> xr.Dataset:

@@ -12,15 +12,14 @@ import pytest
 import xarray as xr
 
 from pipeline.errors import StoreError, StoreLockedError
+from pipeline.io.staging import read_staged, staged_attrs, staged_frames, write_staged
 from pipeline.io.store import (
     Failure,
+    StoreBuilder,
     StoreLock,
     check_writable,
     open_store,
-    read_staged,
-    staged_attrs,
-    staged_frames,
-    write_staged,
+    remove_stale_temporaries,
     write_store,
 )
 from pipeline.model import Flag, make_height_frame, make_raw_frame, validate_raw_frame
@@ -176,3 +175,44 @@ def test_unwritable_commit_is_a_store_error_and_keeps_the_old_store(tmp_path, mo
     with pytest.raises(StoreError, match="cannot be written \\(No space left on device\\)"):
         write_store(store, frames=[_frame("b")], run=xr.Dataset())
     assert store.read_bytes() == before
+
+
+def test_builder_adds_frames_as_they_come_and_commits_atomically(tmp_path):
+    store = tmp_path / "s.h5"
+    write_store(store, frames=[_frame("old")], run=xr.Dataset(attrs={"x": 1}))
+    before = store.read_bytes()
+    frames = [_frame("f001"), _frame("f002", 1)]
+    with StoreBuilder(store, title="streamed") as builder:
+        builder.add_frame(frames[0])
+        assert store.read_bytes() == before  # nothing replaced until the commit
+        builder.add_frame(frames[1])
+        builder.commit(run=xr.Dataset(attrs={"x": 2}), failures=[Failure("b.nc", "read", "?")])
+    st = open_store(store)
+    assert st.frame_ids == ["f001", "f002"] and st.run().attrs["x"] == 2
+    for original in frames:
+        xr.testing.assert_identical(st.frame(original.attrs["frame_id"]), original)
+    assert [p.name for p in tmp_path.iterdir()] == ["s.h5"]
+
+
+def test_builder_left_by_an_error_keeps_the_previous_store(tmp_path):
+    store = tmp_path / "s.h5"
+    write_store(store, frames=[_frame("a")], run=xr.Dataset())
+    before = store.read_bytes()
+    with pytest.raises(RuntimeError, match="stage failed"), StoreBuilder(store) as builder:
+        builder.add_frame(_frame("b"))
+        raise RuntimeError("stage failed")
+    assert store.read_bytes() == before
+    assert [p.name for p in tmp_path.iterdir()] == ["s.h5"]
+    with pytest.raises(StoreError, match="already committed or aborted"):
+        builder.add_frame(_frame("c"))
+
+
+def test_stale_temporaries_of_a_killed_writer_are_removed(tmp_path):
+    store = tmp_path / "s.h5"
+    stale = [tmp_path / ".s.h5.0123456789ab.tmp", tmp_path / ".s.h5.ba9876543210.tmp"]
+    for p in stale:
+        p.write_bytes(b"half a store")
+    other = tmp_path / ".t.h5.0123456789ab.tmp"  # another store's: left alone
+    other.write_bytes(b"x")
+    assert sorted(remove_stale_temporaries(store)) == sorted(stale)
+    assert [p.name for p in tmp_path.iterdir()] == [other.name]
