@@ -16,14 +16,21 @@ Usage::
     python benchmarks/bench_pipeline.py --full          # run length 20/100/400, sizes to 2048²
 
 Each measurement runs in a fresh subprocess so peak memory (max RSS, including worker
-processes) is its own.
+processes) is its own. For (a) and (b) every contender runs on a short and a long run of the
+same frames, alternating, ``--repeat`` times; two per-frame figures are printed from the median
+times: the *whole run* (long-run time / frames, start-up included, what one run costs) and the
+*marginal* cost ((long − short) / (extra frames): start-up, imports and worker-pool launch
+cancel, what each further frame of an overnight run costs).
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
+import shutil
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -34,6 +41,9 @@ from pathlib import Path
 import numpy as np
 
 HERE = Path(__file__).resolve()
+#: every contender computes on one thread per process ("one worker" = one core); the
+#: pipeline's worker processes set the same for themselves
+ONE_THREAD = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
 
 
 # --------------------------------------------------------------------------------------------
@@ -149,7 +159,8 @@ def measure(mode: str, folder: Path, workers: int = 1) -> dict:
     with tempfile.TemporaryDirectory() as tmp:
         store = Path(tmp) / "out.h5"
         res = subprocess.run([sys.executable, str(HERE), "--child", mode, str(folder),
-                              str(store), str(workers)], capture_output=True, text=True)
+                              str(store), str(workers)], capture_output=True, text=True,
+                             env={**os.environ, **ONE_THREAD})
     if res.returncode != 0:
         raise SystemExit(f"{mode} failed:\n{res.stderr[-3000:]}")
     return json.loads(res.stdout.strip().splitlines()[-1])
@@ -165,7 +176,8 @@ def main() -> None:
     ap.add_argument("--child", nargs=4, metavar=("MODE", "FOLDER", "STORE", "WORKERS"),
                     help=argparse.SUPPRESS)
     ap.add_argument("--size", type=int, default=512, help="frame size for (a), (b)")
-    ap.add_argument("--frames", type=int, default=16, help="frames for (a), (b)")
+    ap.add_argument("--frames", type=int, default=24, help="frames of the long run of (a), (b)")
+    ap.add_argument("--repeat", type=int, default=2, help="runs of each contender in (a), (b)")
     ap.add_argument("--full", action="store_true", help="run lengths 20/100/400, sizes to 2048")
     args = ap.parse_args()
     if args.child:
@@ -176,22 +188,34 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
         n, size = args.frames, args.size
-        folder = tmp / f"run{size}"
-        make_frames(folder, n, size)
-        ours = measure("pipeline", folder)
-        floor = measure("io", folder)
-        peer = measure("peer", folder)
-        two = measure("pipeline", folder, workers=2)
-        per = {k: v["seconds"] / n * 1e3 for k, v in
-               (("ours", ours), ("floor", floor), ("peer", peer), ("two", two))}
-        print(f"\n(a, b) {n} frames of {size}² (ms per frame, one worker unless noted)")
-        print(f"  isogap full pipeline   {per['ours']:9.1f}")
-        print(f"  peer (numpy/skimage)   {per['peer']:9.1f}   isogap/peer  = "
-              f"{per['ours'] / per['peer']:.2f}  (peer/isogap = {per['peer'] / per['ours']:.2f})")
-        print(f"  I/O floor              {per['floor']:9.1f}   isogap/floor = "
-              f"{per['ours'] / per['floor']:.2f}")
-        print(f"  isogap, 2 workers      {per['two']:9.1f}   speed-up 1→2 = "
-              f"{per['ours'] / per['two']:.2f}")
+        n_short = max(2, n // 3)
+        long_run = tmp / f"run{size}"
+        paths = make_frames(long_run, n, size)
+        short_run = tmp / f"run{size}-short"
+        short_run.mkdir()
+        for p in paths[:n_short]:
+            shutil.copy(p, short_run / p.name)
+        contenders = (("ours", "pipeline", 1), ("peer", "peer", 1), ("floor", "io", 1),
+                      ("two", "pipeline", 2))
+        times: dict[tuple[str, int], list[float]] = {}
+        for _ in range(args.repeat):  # alternate, so a slow spell of the machine hits all
+            for key, mode, workers in contenders:
+                for folder, m in ((short_run, n_short), (long_run, n)):
+                    times.setdefault((key, m), []).append(
+                        measure(mode, folder, workers)["seconds"])
+        med = {k: statistics.median(v) for k, v in times.items()}
+        whole = {k: med[(k, n)] / n * 1e3 for k, _, _ in contenders}
+        marginal = {k: (med[(k, n)] - med[(k, n_short)]) / (n - n_short) * 1e3
+                    for k, _, _ in contenders}
+        print(f"\n(a, b) {size}² frames, ms per frame (medians of {args.repeat}); whole run = "
+              f"{n} frames, marginal = frames {n_short + 1}..{n}")
+        print("                          whole run   marginal")
+        for key, label in (("ours", "isogap, 1 worker"), ("peer", "peer (numpy/skimage)"),
+                           ("floor", "I/O floor"), ("two", "isogap, 2 workers")):
+            print(f"  {label:22s} {whole[key]:9.1f}  {marginal[key]:9.1f}")
+        for label, a, b in (("isogap / peer", "ours", "peer"), ("isogap / floor", "ours", "floor"),
+                            ("speed-up 1 -> 2 workers", "ours", "two")):
+            print(f"  {label:24s} {whole[a] / whole[b]:7.2f}  {marginal[a] / marginal[b]:9.2f}")
 
         lengths = (20, 100, 400) if args.full else (10, 40)
         lsize = 256
