@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 import traceback
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -246,6 +246,29 @@ def register_pair(
                                              min_confidence=config.drift.min_confidence)
         except IsogapError:
             updown = None
+    return shift, updown
+
+
+def pair_record(result: tuple[FrameShift, UpDownDrift | None]) -> dict[str, Any]:
+    """A :func:`register_pair` result as a JSON-able record (exact: floats keep every digit,
+    infinities and NaN included)."""
+    shift, updown = result
+    return {"shift": asdict(shift),
+            "updown": None if updown is None else asdict(updown)}
+
+
+def pair_from_record(record: dict[str, Any] | None
+                     ) -> tuple[FrameShift, UpDownDrift | None] | None:
+    """The result a :func:`pair_record` holds; None for no record or one that does not fit
+    (a record of another software version: the pair is measured again)."""
+    if record is None:
+        return None
+    try:
+        shift = FrameShift(**record["shift"])
+        up = record.get("updown")
+        updown = None if up is None else UpDownDrift(**{**up, "warnings": tuple(up["warnings"])})
+    except (KeyError, TypeError):
+        return None
     return shift, updown
 
 

@@ -100,6 +100,32 @@ def test_rerun_resumes_and_changed_config_recomputes(run_copy, serial_config, tm
     assert third.n_reused == 0
 
 
+def test_rerun_registers_only_new_drift_pairs(run_copy, serial_config, tmp_path):
+    """Drift-pair results are staged by what they depend on: a rerun measures none again and
+    gives the same drift table; a changed frame re-measures only the pair(s) it belongs to."""
+    store = tmp_path / "s.h5"
+
+    def drift_tasks(events):
+        return [e.total for e in events if e.kind == "pass" and e.name == "drift"]
+
+    first_events, again_events, edit_events = [], [], []
+    run_batch(run_copy, store, serial_config, on_event=first_events.append)
+    table1 = open_store(store).run()
+    run_batch(run_copy, store, serial_config, on_event=again_events.append)
+    n_pairs = drift_tasks(first_events)[0]
+    assert n_pairs >= 2 and drift_tasks(again_events) == [0]
+    xr.testing.assert_identical(open_store(store).run(), table1)
+    # the run's first frame changes: the one pair it starts is measured again, no other
+    first = run_copy / "frame_001.nc"
+    with xr.open_dataset(first, engine="h5netcdf") as ds:
+        edited = ds.load()
+    edited["current"] = edited["current"] * (1 + 1e-6)
+    first.unlink()
+    edited.to_netcdf(first, engine="h5netcdf")
+    run_batch(run_copy, store, serial_config, on_event=edit_events.append)
+    assert drift_tasks(edit_events) == [1]
+
+
 def test_process_pool_matches_serial(tiny_run, tiny_store, tmp_path, heights):
     store, _ = tiny_store
     cfg = parse_config({"run": {"executor": "processes", "workers": 2}})

@@ -236,8 +236,8 @@ def _run(
     drift_model = None
     run_t0 = starts[order[0]] if order else ""
     if config.drift.enabled and len(order) >= 2:
-        drift_model, dtab = _drift(executor, order, staged_paths, headers, run_t0, config,
-                                   emit)
+        drift_model, dtab = _drift(executor, store, order, staged_paths, headers, run_t0,
+                                   config, emit)
         if dtab is not None:
             run_tables.append(dtab)
             run_attrs.update({k: v for k, v in dtab.attrs.items()})

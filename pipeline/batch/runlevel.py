@@ -6,6 +6,7 @@ its own on the executor, and returns what the next pass needs.
 
 from __future__ import annotations
 
+import hashlib
 import itertools
 from collections.abc import Callable
 from pathlib import Path
@@ -19,6 +20,7 @@ from pipeline.batch.events import Event, run_pass
 from pipeline.config import Config
 from pipeline.errors import ConfigError, IsogapError
 from pipeline.io.readers import read_file
+from pipeline.io.staging import read_staged_record, write_staged_record
 from pipeline.model import parse_time
 from pipeline.stages.barrier import (
     WorkFunctionEstimate,
@@ -138,14 +140,17 @@ def lateral_scale(
 
 
 def drift_model(
-    executor: Any, order: list[str], staged: dict[str, str],
+    executor: Any, store: Path, order: list[str], staged: dict[str, str],
     staged_headers: dict[str, tuple[dict[str, Any], dict[str, int]]], run_t0: str,
     config: Config, emit: Callable[[Event], None],
 ) -> tuple[DriftModel | None, xr.Dataset | None]:
     """Register compatible frame pairs (in parallel) and fit the run's drift model.
 
     ``staged`` and ``staged_headers`` give each staged frame's path and its attributes and
-    dimension sizes (:func:`pipeline.io.staging.staged_header`), by frame id.
+    dimension sizes (:func:`pipeline.io.staging.staged_header`), by frame id. Each pair's
+    result is staged as a record keyed by what it depends on (both staged frames' sources and
+    run keys, the registration settings), so a resumed or ``--follow`` run registers only
+    the pairs it has not seen.
     """
     d = config.drift
     headers = [staged_headers[f] for f in order]
@@ -159,13 +164,16 @@ def drift_model(
         emit(Event("warning", message="drift not measured: no two frames of the same area and "
                    "pixel size"))
         return None, None
-    jobs = [(staged[order[i]], staged[order[j]], config) for i, j in pairs]
-    shifts: list[Any] = [None] * len(jobs)
-    updowns = []
-    for k, (shift, updown) in run_pass(executor, "drift", tasks.register_pair, jobs, emit):
-        shifts[k] = shift
-        if updown is not None and updown.confidence >= d.min_confidence:
-            updowns.append(updown)
+    keys = [_pair_key(headers[i][0], headers[j][0], config) for i, j in pairs]
+    results: list[Any] = [tasks.pair_from_record(read_staged_record(store, "pairs", k))
+                          for k in keys]
+    todo = [n for n, r in enumerate(results) if r is None]
+    jobs = [(staged[order[pairs[n][0]]], staged[order[pairs[n][1]]], config) for n in todo]
+    for k, res in run_pass(executor, "drift", tasks.register_pair, jobs, emit):
+        results[todo[k]] = res
+        write_staged_record(store, "pairs", keys[todo[k]], tasks.pair_record(res))
+    shifts = [shift for shift, _ in results]
+    updowns = [u for _, u in results if u is not None and u.confidence >= d.min_confidence]
     try:
         model = fit_drift_series(times, shifts, frame_ids=order, min_confidence=d.min_confidence,
                                  model=d.model, smooth_degree=d.smooth_degree,
@@ -183,6 +191,15 @@ def drift_model(
     if updowns:
         table.attrs.update(_combine_up_down(updowns, model, emit))
     return (model if model.is_usable else None), table
+
+
+def _pair_key(previous: dict[str, Any], current: dict[str, Any], config: Config) -> str:
+    """What a pair's registration depends on: both staged frames (source hashes and run keys,
+    which include the software version) and the registration settings."""
+    parts = [str(a.get(k, "")) for a in (previous, current)
+             for k in ("frame_id", "source_sha256", "source_sidecar_sha256", "run_key")]
+    parts += [str(config.drift.upsample_factor), str(config.drift.min_confidence)]
+    return hashlib.sha256("\n".join(parts).encode()).hexdigest()[:24]
 
 
 def _combine_up_down(

@@ -28,12 +28,14 @@ __all__ = [
     "fsync_replace",
     "netcdf_safe",
     "read_staged",
+    "read_staged_record",
     "staged_attrs",
     "staged_frames",
     "staged_header",
     "staging_dir",
     "temporary_path",
     "write_staged",
+    "write_staged_record",
 ]
 
 
@@ -178,3 +180,30 @@ def staged_frames(store: str | os.PathLike[str], kind: str = "frames") -> dict[s
     return {p.stem: p for p in sorted(folder.glob("*.nc")) if not p.name.startswith(".")}
 
 
+
+
+def write_staged_record(store: str | os.PathLike[str], kind: str, name: str,
+                        record: Mapping[str, Any]) -> Path:
+    """Stage a small JSON record (e.g. a drift-pair result) atomically; return its path."""
+    path = staging_dir(store) / kind / f"{sanitize_id(name)}.json"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = temporary_path(path)
+    try:
+        tmp.write_text(json.dumps(record))
+        fsync_replace(tmp, path)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return path
+
+
+def read_staged_record(store: str | os.PathLike[str], kind: str, name: str
+                       ) -> dict[str, Any] | None:
+    """A record staged by :func:`write_staged_record`, or None if there is none (or it cannot
+    be read: a record is a cache, recomputed when in doubt)."""
+    path = staging_dir(store) / kind / f"{sanitize_id(name)}.json"
+    try:
+        record = json.loads(path.read_text())
+    except (OSError, ValueError):
+        return None
+    return record if isinstance(record, dict) else None
