@@ -9,6 +9,8 @@ Scheduling lives in :mod:`pipeline.batch`.
 
 from __future__ import annotations
 
+import hashlib
+import json
 import math
 import traceback
 from dataclasses import asdict, dataclass, field
@@ -18,10 +20,18 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
+from pipeline._version import __version__
 from pipeline.config import Config
 from pipeline.errors import IsogapError
 from pipeline.io.readers import read_file, read_header
-from pipeline.io.staging import read_staged, staged_header, write_staged
+from pipeline.io.staging import (
+    read_staged,
+    read_staged_record,
+    staged_header,
+    staging_dir,
+    write_staged,
+    write_staged_record,
+)
 from pipeline.io.store import Failure
 from pipeline.model import BAD_PIXELS, parse_time
 from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, apparent_barrier_map, fit_curves
@@ -99,8 +109,13 @@ def curve_fit_options(config: Config) -> dict[str, Any]:
     return config.barrier.model_dump(include=set(FIT_CURVES_CONFIG_KEYS))
 
 
-def survey_file(path: str, config: Config) -> SurveyResult:
-    """Read one input; fit its approach curves if it holds curves, else note the frame's attrs."""
+def survey_file(path: str, config: Config, store: str = "") -> SurveyResult:
+    """Read one input; fit its approach curves if it holds curves, else note the frame's attrs.
+
+    With ``store``, the fits of a curve file are staged under it, keyed by the file's path and
+    content hashes, the fit settings and the software version, and reused by later runs (a
+    resumed or ``--follow`` run fits only new curve files).
+    """
     res = SurveyResult(path=path)
     header = read_header(path)
     if header is not None and header["kind"] == "frame":
@@ -109,6 +124,11 @@ def survey_file(path: str, config: Config) -> SurveyResult:
         res.sidecar_sha256 = str(header.get("source_sidecar_sha256", ""))
         res.attrs = {k: v for k, v in header.items() if isinstance(v, str | int | float)}
         return res
+    key = _curve_key(header, config) if store and header is not None else ""
+    if key:
+        cached = _cached_survey(store, key, path)
+        if cached is not None:
+            return cached
     try:
         ds = read_file(path, piezo_z_m_per_V=config.input.piezo_z_m_per_V)
     except Exception as exc:  # every failure is recorded, none stops the run
@@ -129,7 +149,48 @@ def survey_file(path: str, config: Config) -> SurveyResult:
                 res.barrier_map = apparent_barrier_map(ds, **curve_fit_options(config))
             except IsogapError as exc:
                 res.warnings.append(f"{path}: no barrier map from the curve grid ({exc})")
+        if key and res.sha256 == header.get("source_sha256"):  # unchanged since the header
+            _stage_survey(store, key, res)
     return res
+
+
+def _curve_key(header: dict[str, Any], config: Config) -> str:
+    """What the fits of a curve file depend on: its path and content, the fit settings, the
+    piezo calibration and the software version."""
+    if header.get("kind") != "curve":
+        return ""
+    parts = [str(header.get(k, "")) for k in ("source_file", "source_sha256",
+                                              "source_sidecar_sha256")]
+    parts += [json.dumps(curve_fit_options(config), sort_keys=True, default=str),
+              repr(config.input.piezo_z_m_per_V), __version__]
+    return hashlib.sha256("\n".join(parts).encode()).hexdigest()[:24]
+
+
+def _stage_survey(store: str, key: str, res: SurveyResult) -> None:
+    write_staged(store, "curves", f"{key}-table", res.curve_table)
+    if res.barrier_map is not None:
+        write_staged(store, "curves", f"{key}-map", res.barrier_map)
+    attrs = {k: (v.item() if isinstance(v, np.generic) else v) for k, v in res.attrs.items()}
+    # the record last: it marks the entry complete
+    write_staged_record(store, "curves", key, {
+        "kind": res.kind, "sha256": res.sha256, "sidecar_sha256": res.sidecar_sha256,
+        "attrs": attrs, "warnings": res.warnings, "map": res.barrier_map is not None})
+
+
+def _cached_survey(store: str, key: str, path: str) -> SurveyResult | None:
+    record = read_staged_record(store, "curves", key)
+    if record is None:
+        return None
+    folder = staging_dir(store) / "curves"
+    try:
+        table = read_staged(folder / f"{key}-table.nc")
+        bmap = read_staged(folder / f"{key}-map.nc") if record["map"] else None
+        return SurveyResult(path=path, kind=str(record["kind"]), sha256=str(record["sha256"]),
+                            sidecar_sha256=str(record["sidecar_sha256"]),
+                            attrs=dict(record["attrs"]), curve_table=table, barrier_map=bmap,
+                            warnings=list(record["warnings"]))
+    except (IsogapError, KeyError, TypeError):  # an incomplete entry: fit again
+        return None
 
 
 def _on_grid(curves: xr.Dataset, tolerance_m: float = 1e-12) -> bool:

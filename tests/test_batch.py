@@ -126,6 +126,26 @@ def test_rerun_registers_only_new_drift_pairs(run_copy, serial_config, tmp_path)
     assert drift_tasks(edit_events) == [1]
 
 
+def test_rerun_reuses_the_curve_fits(run_copy, serial_config, tmp_path, monkeypatch):
+    """Curve fits are staged by file content and fit settings: a rerun fits nothing again
+    and writes the same run group; changed fit settings fit again."""
+    store = tmp_path / "s.h5"
+    run_batch(run_copy, store, serial_config)
+    run1 = open_store(store).run()
+
+    def no_fitting(*args, **kwargs):
+        raise AssertionError("curves fitted again")
+
+    monkeypatch.setattr("pipeline.tasks.fit_curves", no_fitting)
+    again = run_batch(run_copy, store, serial_config)
+    assert not again.failures
+    xr.testing.assert_identical(open_store(store).run(), run1)
+    changed = parse_config({"run": {"executor": "serial"},
+                            "barrier": {"min_points": 9}})
+    third = run_batch(run_copy, store, changed)
+    assert [f.stage for f in third.failures] == ["fit_curves"]  # fitted again: refused here
+
+
 def test_process_pool_matches_serial(tiny_run, tiny_store, tmp_path, heights):
     store, _ = tiny_store
     cfg = parse_config({"run": {"executor": "processes", "workers": 2}})

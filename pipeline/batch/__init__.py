@@ -134,7 +134,7 @@ def _run(
     # 1. survey
     surveys: list[tasks.SurveyResult] = []
     for _, res in run_pass(executor, "reading", tasks.survey_file,
-                     [(str(p), config) for p in inputs], emit):
+                     [(str(p), config, str(store)) for p in inputs], emit):
         if res.failure:
             fail(res.failure)
         for w in res.warnings:
