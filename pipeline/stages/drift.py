@@ -54,7 +54,13 @@ from pipeline.stages.drift_model import (
     nm_per_min_to_m_per_s,
 )
 from pipeline.stages.drift_shift import FrameShift, measure_frame_shift
-from pipeline.stages.drift_table import ZDrift, drift_table, fit_z_drift, model_from_table
+from pipeline.stages.drift_table import (
+    ZDrift,
+    drift_table,
+    fit_z_drift,
+    model_from_table,
+    theil_sen,
+)
 
 __all__ = [
     "DriftModel",
@@ -73,4 +79,5 @@ __all__ = [
     "model_from_table",
     "nm_per_min_to_m_per_s",
     "plan_frame_pairs",
+    "theil_sen",
 ]

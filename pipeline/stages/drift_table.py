@@ -13,12 +13,13 @@ from typing import Any
 
 import numpy as np
 import xarray as xr
+from scipy.special import ndtri
 
 from pipeline.errors import MissingAttributeError, ProcessingError
 from pipeline.stages.drift_model import DriftModel, m_per_s_to_nm_per_min
 from pipeline.stages.drift_shift import FrameShift
 
-__all__ = ["ZDrift", "drift_table", "fit_z_drift", "model_from_table"]
+__all__ = ["ZDrift", "drift_table", "fit_z_drift", "model_from_table", "theil_sen"]
 
 
 @dataclass(frozen=True)
@@ -71,11 +72,50 @@ def fit_z_drift(
     ok = np.isfinite(t) & np.isfinite(h)
     if ok.sum() < 3 or np.ptp(t[ok]) <= 0:
         return ZDrift(math.nan, math.nan, math.nan, int(ok.sum()))
-    from scipy import stats  # here: scipy.stats takes 0.2 s to import
+    slope, intercept, low, high = theil_sen(t[ok], h[ok], confidence=0.6827)
+    return ZDrift(slope, 0.5 * (high - low), intercept, int(ok.sum()))
 
-    res = stats.theilslopes(h[ok], t[ok], alpha=0.6827)
-    return ZDrift(float(res.slope), float(0.5 * (res.high_slope - res.low_slope)),
-                  float(res.intercept), int(ok.sum()))
+
+def _tie_term(v: np.ndarray) -> float:
+    """Σ k(k−1)(2k+5) over the groups of k > 1 equal values (Sen's tie correction)."""
+    _, counts = np.unique(v, return_counts=True)
+    k = counts[counts > 1].astype(float)
+    return float(np.sum(k * (k - 1) * (2 * k + 5)))
+
+
+def theil_sen(x: np.ndarray, y: np.ndarray, *, confidence: float = 0.95
+              ) -> tuple[float, float, float, float]:
+    """Theil–Sen line through ``(x, y)``: slope, intercept and the slope's confidence interval.
+
+    The slope is the median of the pairwise slopes over pairs with ``x_j > x_i``, the intercept
+    ``median(y) − slope·median(x)``; the interval comes from the normal approximation to the
+    distribution of Kendall's statistic with ties corrected (Sen 1968, eq. 2.6). The numbers
+    are those of ``scipy.stats.theilslopes`` (tested), without importing ``scipy.stats`` (a
+    fifth of a second of the scheduler's start-up).
+
+    Returns
+    -------
+    tuple of float
+        ``(slope, intercept, low_slope, high_slope)``; the interval bounds are NaN when no pair
+        of distinct ``x`` exists.
+    """
+    x = np.asarray(x, dtype=float).reshape(-1)
+    y = np.asarray(y, dtype=float).reshape(-1)
+    dx = x[:, None] - x[None, :]
+    dy = y[:, None] - y[None, :]
+    pos = dx > 0
+    slopes = np.sort(dy[pos] / dx[pos])
+    if not slopes.size:
+        return math.nan, math.nan, math.nan, math.nan
+    slope = float(np.median(slopes))
+    intercept = float(np.median(y) - slope * np.median(x))
+    alpha = 1.0 - confidence if confidence > 0.5 else confidence
+    z = float(ndtri(alpha / 2.0))  # standard normal quantile (negative)
+    n, nt = y.size, slopes.size
+    sigma = math.sqrt((n * (n - 1) * (2 * n + 5) - _tie_term(x) - _tie_term(y)) / 18.0)
+    upper = min(int(np.round((nt - z * sigma) / 2.0)), nt - 1)
+    lower = max(int(np.round((nt + z * sigma) / 2.0)) - 1, 0)
+    return slope, intercept, float(slopes[lower]), float(slopes[upper])
 
 
 def drift_table(

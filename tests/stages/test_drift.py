@@ -34,6 +34,7 @@ from pipeline.stages.drift import (
     model_from_table,
     nm_per_min_to_m_per_s,
     plan_frame_pairs,
+    theil_sen,
 )
 from pipeline.stages.registration import register_images
 
@@ -429,6 +430,24 @@ def test_z_drift_is_robust_to_a_tip_change():
     assert z.rate_m_per_s == pytest.approx(clean, rel=0.35)
     assert z.rate_nm_per_min == pytest.approx(m_per_s_to_nm_per_min(z.rate_m_per_s))
     assert math.isnan(fit_z_drift([0.0, 1.0], [0.0, 1.0]).rate_m_per_s)
+
+
+@pytest.mark.parametrize("seed", range(6))
+@pytest.mark.parametrize("confidence", [0.6827, 0.95])
+def test_theil_sen_matches_scipy(seed, confidence):
+    """Reference library: scipy.stats.theilslopes, with and without ties in x and y."""
+    from scipy import stats
+
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(3, 40))
+    x = rng.normal(size=n) if seed % 2 else rng.integers(0, 6, n).astype(float)  # ties
+    y = 0.3 * x + rng.standard_t(2, n)
+    if seed == 4:
+        y = np.round(y)  # ties in y too
+    ref = stats.theilslopes(y, x, alpha=confidence)
+    got = theil_sen(x, y, confidence=confidence)
+    np.testing.assert_allclose(got, (ref.slope, ref.intercept, ref.low_slope, ref.high_slope),
+                               rtol=1e-12, atol=1e-12)
 
 
 def test_drift_table_round_trip(rough, tmp_path):
