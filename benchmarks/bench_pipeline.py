@@ -230,6 +230,9 @@ def main() -> None:
             print(f"  {m:6d}   {r['seconds'] / m:7.3f}   {r['maxrss_mb']:7.0f}   "
                   f"(time/frame ×{r['seconds'] / m / (base['seconds'] / lengths[0]):.2f}, "
                   f"memory ×{r['maxrss_mb'] / base['maxrss_mb']:.2f} vs {lengths[0]})")
+        r2 = measure("pipeline", f, workers=2)  # the longest run once more, on 2 workers
+        print(f"  {m:6d}   {r2['seconds'] / m:7.3f}   {r2['rss_total_mb']:7.0f}   (2 workers: "
+              f"whole-run speed-up {r['seconds'] / r2['seconds']:.2f}; memory: all processes)")
 
         sizes = (256, 512, 1024, 2048) if args.full else (256, 512, 1024)
         print("\n(d) frame size, 4 frames, one worker")

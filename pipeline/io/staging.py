@@ -49,7 +49,9 @@ def _safe_attr(value: Any) -> Any:
         return None
     if isinstance(value, bool | np.bool_):
         return int(value)
-    if isinstance(value, str | int | float | np.integer | np.floating):
+    if isinstance(value, str):
+        return value.replace("\x00", "")  # HDF5 strings cannot hold NUL characters
+    if isinstance(value, int | float | np.integer | np.floating):
         return value
     if isinstance(value, np.ndarray):
         if value.dtype == bool:
@@ -73,7 +75,8 @@ def _safe_attr(value: Any) -> Any:
 def netcdf_safe(ds: xr.Dataset) -> xr.Dataset:
     """Copy of ``ds`` whose attributes netCDF can hold (strings, numbers, numeric arrays).
 
-    ``None`` values are dropped, booleans become integers, mappings and lists become JSON text.
+    ``None`` values are dropped, booleans become integers, mappings and lists become JSON text,
+    NUL characters are removed from strings (HDF5 variable-length strings cannot hold them).
     """
     out = ds.copy()
     out.attrs = {k: v for k, v in ((k, _safe_attr(v)) for k, v in ds.attrs.items())
