@@ -93,6 +93,8 @@ class FrameSummary:
     failure: Failure | None = None
     #: attributes and dimension sizes of the staged result, as read back from it
     header: tuple[dict[str, Any], dict[str, int]] | None = None
+    #: the finished frame itself, when it is handed to the scheduler instead of staged
+    dataset: xr.Dataset | None = None
 
 
 def _failure(path: str, stage: str, exc: BaseException) -> Failure:
@@ -346,8 +348,13 @@ def lattice_of_frame(staged: str, config: Config) -> LatticeCalibration | None:
 def finalize_frame(
     staged: str, store: str, config: Config, drift_model: DriftModel | None, run_t0: str,
     z_scale: float, z_scale_uncertainty: float, extra_attrs: dict[str, Any],
+    stage_result: bool = True,
 ) -> FrameSummary:
-    """Run-level corrections of one staged frame: drift inside it, then the z scale."""
+    """Run-level corrections of one staged frame: drift inside it, then the z scale.
+
+    The finished frame is staged under ``store`` (``final/``), or, with ``stage_result=False``,
+    returned in the summary's ``dataset`` for the scheduler to write into the store at once.
+    """
     out = FrameSummary(path=staged)
     stage = "read-staged"
     try:
@@ -363,8 +370,11 @@ def finalize_frame(
             stage = "scale_height"
             ds = scale_height(ds, factor=z_scale, factor_uncertainty=z_scale_uncertainty)
         ds.attrs.update(extra_attrs)
-        stage = "stage-write"
-        out.staged = str(write_staged(store, "final", ds.attrs["frame_id"], ds))
+        if stage_result:
+            stage = "stage-write"
+            out.staged = str(write_staged(store, "final", ds.attrs["frame_id"], ds))
+        else:
+            out.dataset = ds
         _summarise(ds, out)
     except Exception as exc:
         out.failure = _failure(out.path, stage, exc)

@@ -146,6 +146,13 @@ def test_rerun_reuses_the_curve_fits(run_copy, serial_config, tmp_path, monkeypa
     assert [f.stage for f in third.failures] == ["fit_curves"]  # fitted again: refused here
 
 
+def test_finished_frames_go_straight_into_the_store(tiny_store):
+    # without a lateral scale to measure, nothing is staged after the finishing pass
+    store, summary = tiny_store
+    assert summary.n_frames > 0
+    assert not (store.with_name(store.name + ".parts") / "final").exists()
+
+
 def test_process_pool_matches_serial(tiny_run, tiny_store, tmp_path, heights):
     store, _ = tiny_store
     cfg = parse_config({"run": {"executor": "processes", "workers": 2}})

@@ -7,11 +7,11 @@ The passes of a run, each a set of independent tasks carrying file paths (DESIGN
 3. **frames**: height → levelling → quality, each result staged as its own file;
 4. **drift**: consecutive staged frames registered pairwise, a drift model fitted;
 5. **finalise**: drift corrected inside each frame, z scale from known steps applied; each
-   finished frame is added to the new store (built under a temporary name) while the workers
-   finish the others;
-6. **lattice** (when a lattice constant is configured): lateral scale from the atomically
-   resolved, drift-corrected frames; the frames are then added with it applied to their
-   coordinates;
+   finished frame comes back to this process and is added to the new store (built under a
+   temporary name) while the workers finish the others;
+6. **lattice** (when a lattice constant is configured): the finished frames are staged
+   instead, the lateral scale is measured on the atomically resolved, drift-corrected ones, and
+   the frames are then added with it applied to their coordinates;
 7. **commit**: the run, map and failure groups written, the store replaced atomically.
 
 Workers read their own input and return small summaries; only this process writes the store.
@@ -283,19 +283,23 @@ def _finish(
     measured from the finished frames, once it is known."""
     finals: list[str] = []
     summary.frames = []
-    jobs = [(staged_paths[f], str(builder.path), config, drift_model
-             if config.drift.correct_within_frames else None, run_t0, *z_scale, extra)
-            for f in order]
+    # without a lateral scale to measure, finished frames go straight into the store (written
+    # while the workers finish the others); otherwise they are staged until it is known
     calibrate_lateral = bool(config.calibrate.lattice_constant_m)
+    jobs = [(staged_paths[f], str(builder.path), config, drift_model
+             if config.drift.correct_within_frames else None, run_t0, *z_scale, extra,
+             calibrate_lateral) for f in order]
     for _, res in run_pass(executor, "finishing", tasks.finalize_frame, jobs, emit):
         if res.failure:
             fail(res.failure)
             continue
-        finals.append(res.staged)
         summary.frames.append(res)
-        if not calibrate_lateral:  # written while the workers finish the other frames
-            builder.add_frame(read_staged(res.staged))
-    summary.n_frames = len(finals)
+        if res.dataset is not None:
+            builder.add_frame(res.dataset)
+            res.dataset = None  # memory stays at the frames in flight
+        else:
+            finals.append(res.staged)
+    summary.n_frames = len(summary.frames)
     summary.n_ok = sum(1 for r in summary.frames if r.status == "ok")
     summary.n_flagged = sum(1 for r in summary.frames if r.status != "ok")
     if drift_model is not None:

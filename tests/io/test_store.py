@@ -216,3 +216,19 @@ def test_stale_temporaries_of_a_killed_writer_are_removed(tmp_path):
     other.write_bytes(b"x")
     assert sorted(remove_stale_temporaries(store)) == sorted(stale)
     assert [p.name for p in tmp_path.iterdir()] == [other.name]
+
+
+def test_full_disk_while_adding_a_frame_keeps_the_previous_store(tmp_path, monkeypatch):
+    store = tmp_path / "s.h5"
+    write_store(store, frames=[_frame("a")], run=xr.Dataset())
+    before = store.read_bytes()
+
+    def no_space(*args, **kwargs):
+        raise OSError(28, "No space left on device")
+
+    monkeypatch.setattr("pipeline.io.store.write_grid", no_space)
+    with pytest.raises(StoreError, match=r"cannot be written \(No space left on device\).*"
+                                         r"staged parts are kept"):
+        write_store(store, frames=[_frame("b")], run=xr.Dataset())
+    assert store.read_bytes() == before
+    assert [p.name for p in tmp_path.iterdir()] == ["s.h5"]
