@@ -13,7 +13,7 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-from pipeline.batch import Event, RunSummary, own_files, run_batch
+from pipeline.batch import Event, RunSummary, make_executor, own_files, run_batch
 from pipeline.config import Config
 from pipeline.errors import ConfigError, IsogapError, StoreLockedError
 from pipeline.io.readers import find_inputs, reader_for
@@ -76,6 +76,7 @@ def follow_folder(
     done: set[Path] = set()
     code = 0
     polls = 0
+    executor = None  # one for all commits: the worker processes start once
     try:
         while max_polls is None or polls < max_polls:
             polls += 1
@@ -83,9 +84,10 @@ def follow_folder(
                                 exclude=own_files(Path(store)))
             stable, seen = stable_files(found, seen)
             if stable and set(stable) != done:
+                executor = executor or make_executor(config)
                 try:
                     summary = run_batch(run_dir, store, config, inputs=sorted(stable),
-                                        on_event=on_event,
+                                        on_event=on_event, executor=executor,
                                         history=f"isogap process {run_dir} --follow")
                 except StoreLockedError:
                     raise  # another writer: watching on would only fight it
@@ -100,4 +102,7 @@ def follow_folder(
             time.sleep(poll_s)
     except KeyboardInterrupt:
         pass
+    finally:
+        if executor is not None:
+            executor.close()
     return code

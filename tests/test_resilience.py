@@ -124,6 +124,41 @@ def test_follow_picks_up_new_files_and_ignores_growing_ones(tiny_run, tmp_path):
     assert len(st.frame_ids) == n_frames
 
 
+def test_follow_keeps_one_worker_pool_for_all_commits(tiny_run, tmp_path, monkeypatch):
+    import pipeline.follow as follow_mod
+
+    original = follow_mod.make_executor
+    made, closed = [], []
+
+    def counting(config):
+        ex = original(config)
+        made.append(ex)
+        close = ex.close
+        ex.close = lambda: (closed.append(ex), close())
+        return ex
+
+    monkeypatch.setattr(follow_mod, "make_executor", counting)
+    watched = tmp_path / "watched"
+    watched.mkdir()
+    files = sorted(p for p in tiny_run.iterdir() if p.is_file())
+    for f in files[:2]:
+        shutil.copy(f, watched / f.name)
+    cfg = parse_config({"run": {"executor": "processes", "workers": 2},
+                        "drift": {"enabled": False}})
+    summaries = []
+    t = threading.Thread(target=follow_folder, args=(watched, tmp_path / "f.h5", cfg),
+                         kwargs={"poll_s": 0.4, "max_polls": 10, "on_summary": summaries.append})
+    t.start()
+    time.sleep(2.0)
+    for f in files[2:]:
+        shutil.copy(f, watched / f.name)
+    t.join(timeout=120)
+    assert not t.is_alive()
+    assert len(summaries) >= 2 and summaries[-1].n_frames > summaries[0].n_frames
+    assert len(made) == 1 and made[0].name == "processes"  # one pool for every commit
+    assert closed == made  # closed when watching stops
+
+
 def test_reprocess_with_changed_config_changes_only_what_it_touches(run_copy, tmp_path):
     from pipeline.reprocess import reprocess_store
 

@@ -84,6 +84,7 @@ def run_batch(
     inputs: list[Path] | None = None,
     history: str = "",
     extra_run_attrs: dict[str, Any] | None = None,
+    executor: Any | None = None,
 ) -> RunSummary:
     """Process a run folder into a store. See the module docstring for the passes.
 
@@ -100,6 +101,12 @@ def run_batch(
         Receives :class:`Event` objects for progress display.
     inputs : list of Path, optional
         Explicit input files instead of the folder's contents (used by ``reprocess``).
+    history, extra_run_attrs : optional
+        The store's history line and further attributes of its ``run`` group.
+    executor : optional
+        An executor from :func:`make_executor` to run the tasks on and leave open (``--follow``
+        keeps one across its commits, so the workers start once); by default one is made from
+        ``config`` and closed at the end.
     """
     t_start = time.perf_counter()
     emit = on_event or (lambda e: None)
@@ -114,11 +121,13 @@ def run_batch(
     with StoreLock(store):
         for tmp in remove_stale_temporaries(store):
             log.info("removed %s, left by a writer that was stopped", tmp)
-        executor = make_executor(config)
+        own = executor is None
+        run_on = make_executor(config) if executor is None else executor
         try:
-            _run(executor, inputs, store, config, summary, emit, history, extra_run_attrs or {})
+            _run(run_on, inputs, store, config, summary, emit, history, extra_run_attrs or {})
         finally:
-            executor.close()
+            if own:
+                run_on.close()
     summary.seconds = time.perf_counter() - t_start
     return summary
 
