@@ -11,7 +11,6 @@ from collections.abc import Callable
 import numpy as np
 from numpy.typing import ArrayLike
 from scipy import constants as _c
-from scipy import optimize
 from scipy.special import digamma
 
 from pipeline.errors import ProcessingError
@@ -429,4 +428,6 @@ def gap_for_current(
         raise ProcessingError(
             f"no gap between {bracket_m[0]:.3g} and {bracket_m[1]:.3g} m carries "
             f"{abs(current_A):.3g} A at {bias_V:g} V with phi = {phi_eV:g} eV")
+    from scipy import optimize  # here: 0.3 s to import, and frame work never needs it
+
     return float(np.exp(optimize.brentq(f, lo, hi, xtol=1e-7)))

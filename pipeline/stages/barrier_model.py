@@ -12,7 +12,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import optimize
 
 from pipeline import physics
 from pipeline.errors import ProcessingError
@@ -141,6 +140,8 @@ def fit_barrier_model(
                 raise ProcessingError(
                     f"fit_barrier_model: no barrier up to 40 eV gives phi_ap = {target:.3g} eV "
                     f"at {bias_V:g} V with profile {profile!r}")
+        from scipy import optimize  # here: 0.3 s to import, and frame work never needs it
+
         phi = float(optimize.brentq(lambda p: model_phi_ap(p) - target, lo, hi, xtol=1e-5))
     except ProcessingError as exc:
         raise ProcessingError(f"fit_barrier_model: {exc}") from None

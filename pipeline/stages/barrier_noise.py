@@ -11,7 +11,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import optimize
 
 __all__ = ["MAD_TO_SIGMA"]
 
@@ -130,6 +129,8 @@ def _match_moments(x: np.ndarray, b: np.ndarray, u: np.ndarray, v: np.ndarray, s
     lo, hi = -0.5, 0.95
     m_lo, m_hi = mismatch(lo), mismatch(hi)
     if m_lo * m_hi < 0:
+        from scipy import optimize  # here: 0.3 s to import, and frame work never needs it
+
         rho = float(optimize.brentq(mismatch, lo, hi, xtol=1e-4))
     else:
         rho = lo if abs(m_lo) < abs(m_hi) else hi

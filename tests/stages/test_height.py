@@ -448,6 +448,19 @@ def test_heteroscedastic_noise_model() -> None:
 # --------------------------------------------------------------------------------------------
 
 
+@pytest.mark.parametrize("seed", range(20))
+def test_two_variable_nnls_matches_scipy(seed: int) -> None:
+    """Reference library: scipy.optimize.nnls, on problems with no, one or both bounds active."""
+    from scipy.optimize import nnls
+
+    from pipeline.stages.height import _nnls2
+
+    rng = np.random.default_rng(seed)
+    a = np.abs(rng.normal(size=(16, 2))) + 0.1
+    b = a @ rng.normal(size=2) + 0.3 * rng.normal(size=16)  # coefficients of either sign
+    np.testing.assert_allclose(_nnls2(a, b), nnls(a, b)[0], rtol=1e-9, atol=1e-12)
+
+
 def test_input_not_mutated_and_history_appended() -> None:
     rng = np.random.default_rng(13)
     s = lattice()
