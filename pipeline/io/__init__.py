@@ -1,4 +1,5 @@
-"""Everything that touches files: raw-file readers and writers (the store lives in ``store``).
+"""Everything that touches files: raw-file readers and writers (the store lives in ``store``,
+its staged parts in ``staging``, the fast frame I/O in ``h5grid``).
 
 The public reading API is :func:`read_file` (one file -> validated raw dataset) and
 :func:`find_inputs` (a run folder -> its input files); readers are looked up by suffix in a
