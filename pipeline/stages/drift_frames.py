@@ -70,11 +70,15 @@ class Geometry:
 
     def to_scan(self, vx: Any, vy: Any) -> tuple[Any, Any]:
         """Lab (sample) axes → the frame's scan axes."""
+        if self.angle_rad == 0:  # the same numbers, without four whole-array products
+            return vx, vy
         c, s = math.cos(self.angle_rad), math.sin(self.angle_rad)
         return c * vx + s * vy, -s * vx + c * vy
 
     def to_lab(self, ux: Any, uy: Any) -> tuple[Any, Any]:
         """The frame's scan axes → lab (sample) axes."""
+        if self.angle_rad == 0:
+            return ux, uy
         c, s = math.cos(self.angle_rad), math.sin(self.angle_rad)
         return c * ux - s * uy, s * ux + c * uy
 

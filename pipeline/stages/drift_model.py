@@ -117,6 +117,9 @@ class DriftModel:
 
     def position_m(self, t: Any) -> tuple[np.ndarray, np.ndarray]:
         """Drift displacement ``d(t) = (x, y)`` in m of the tip relative to the sample."""
+        if self.degree == 1:  # constant velocity: the same numbers, without the basis matrix
+            tau = np.asarray(t, dtype=float) / self.time_scale_s
+            return tau * float(self.coef_x[0]), tau * float(self.coef_y[0])
         b = self._basis(t)
         return b @ self.coef_x, b @ self.coef_y
 
