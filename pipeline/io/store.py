@@ -22,6 +22,7 @@ from __future__ import annotations
 import fcntl
 import json
 import os
+import re
 import shutil
 import socket
 import tempfile
@@ -184,10 +185,13 @@ def remove_stale_temporaries(store: str | os.PathLike[str]) -> list[Path]:
     Returns the removed paths.
     """
     store = Path(store)
+    # exactly the names temporary_path gives this store (not those of "s.h5.bak" beside "s.h5")
+    mine = re.compile(rf"\.{re.escape(store.name)}\.[0-9a-f]{{12}}\.tmp")
     removed = []
     for tmp in store.parent.glob(f".{store.name}.*.tmp"):
-        tmp.unlink(missing_ok=True)
-        removed.append(tmp)
+        if mine.fullmatch(tmp.name):
+            tmp.unlink(missing_ok=True)
+            removed.append(tmp)
     return removed
 
 

@@ -212,10 +212,12 @@ def test_stale_temporaries_of_a_killed_writer_are_removed(tmp_path):
     stale = [tmp_path / ".s.h5.0123456789ab.tmp", tmp_path / ".s.h5.ba9876543210.tmp"]
     for p in stale:
         p.write_bytes(b"half a store")
-    other = tmp_path / ".t.h5.0123456789ab.tmp"  # another store's: left alone
-    other.write_bytes(b"x")
+    others = [tmp_path / ".t.h5.0123456789ab.tmp",  # other stores': left alone
+              tmp_path / ".s.h5.bak.0123456789ab.tmp"]
+    for p in others:
+        p.write_bytes(b"x")
     assert sorted(remove_stale_temporaries(store)) == sorted(stale)
-    assert [p.name for p in tmp_path.iterdir()] == [other.name]
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(p.name for p in others)
 
 
 def test_full_disk_while_adding_a_frame_keeps_the_previous_store(tmp_path, monkeypatch):
