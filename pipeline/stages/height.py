@@ -21,6 +21,7 @@ from scipy import ndimage
 from pipeline import physics
 from pipeline.errors import ProcessingError
 from pipeline.model import BAD_PIXELS, Flag, add_warning, make_height_frame, stage
+from pipeline.stages.stats import median as _median
 
 __all__ = [
     "NoiseEstimate",
@@ -279,24 +280,6 @@ def _peak_bins(power: np.ndarray, threshold: float) -> np.ndarray:
     if not hot.any():
         return hot
     return _grow(_grow(hot, r, 0, wrap=True), r, 1, wrap=True)
-
-
-def _median(x: np.ndarray) -> float:
-    """``numpy.median`` of all entries (NaN if any is NaN), by one partition at the middle
-    index (the lower middle value of an even count is the largest entry below it): the same
-    number, several times faster than numpy's three-index partition."""
-    a = np.array(x, dtype=np.float64).ravel()
-    n = a.size
-    if n == 0:
-        return math.nan
-    k = n // 2
-    a.partition(k)
-    if math.isnan(float(a[k:].max())):
-        return math.nan
-    hi = float(a[k])
-    if n % 2:
-        return hi
-    return (float(a[:k].max()) + hi) / 2
 
 
 def _robust_var(y: np.ndarray) -> float:

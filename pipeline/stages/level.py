@@ -34,6 +34,7 @@ from scipy import ndimage
 
 from pipeline.errors import ProcessingError
 from pipeline.model import BAD_PIXELS, FLAG_MEANINGS, Flag, add_warning, stage
+from pipeline.stages.stats import median_inplace as _median_inplace
 
 __all__ = ["level_lines", "level_terraces", "repair_scars", "subtract_background"]
 
@@ -191,31 +192,6 @@ def _grid_variance(pu_t: np.ndarray, pv_t: np.ndarray, cov: np.ndarray) -> np.nd
     c = np.where(k == m, cov[k, m], cov[k, m] + cov[m, k])
     var = (pv_t[:, k] * pv_t[:, m] * c[None, :]) @ (pu_t[:, k] * pu_t[:, m]).T
     return var.clip(min=0.0)
-
-
-def _median_inplace(a: np.ndarray) -> float:
-    """``numpy.median`` of a 1-D float64 array that may be reordered (NaN if any is NaN).
-
-    One partition at the middle index (the lower middle value for an even count is the
-    largest entry below it): the same number as ``numpy.median``, several times faster than
-    its three-index partition.
-    """
-    n = a.size
-    if n == 0:
-        return math.nan
-    k = n // 2
-    a.partition(k)
-    if math.isnan(float(a[k:].max())):  # NaN sort last: then numpy's median is NaN
-        return math.nan
-    hi = float(a[k])
-    if n % 2:
-        return hi
-    return (float(a[:k].max()) + hi) / 2
-
-
-def _median(x: np.ndarray) -> float:
-    """``numpy.median`` of all entries (see :func:`_median_inplace`)."""
-    return _median_inplace(np.array(x, dtype=np.float64).ravel())
 
 
 def _median_mad(x: np.ndarray) -> tuple[float, float]:

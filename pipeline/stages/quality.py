@@ -24,7 +24,7 @@ from pipeline.model import (
     replace_maps,
     stage,
 )
-from pipeline.stages.height import _median  # one fast exact median for the stages
+from pipeline.stages.stats import median as _median
 
 __all__ = ["areal_parameters", "assess_quality", "detect_tip_changes", "flag_tip_changes"]
 

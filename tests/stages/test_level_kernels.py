@@ -30,11 +30,10 @@ def test_median_and_mad_equal_numpy() -> None:
     for x in _arrays(rng):
         med = np.median(x)  # numpy.median is the reference
         mad = np.median(np.abs(x - med))
-        assert L._median(x) == med
         assert L._median_mad(x) == (med, mad)
         assert L._mad_scale(x) == L.MAD_TO_SIGMA * mad
-    assert math.isnan(L._median(np.array([1.0, np.nan, 3.0, 4.0])))  # numpy: NaN in, NaN out
-    assert L._median(np.array([])) != L._median(np.array([]))  # empty: NaN
+    # numpy: NaN in, NaN out (the median itself: tests/stages/test_stats.py)
+    assert all(math.isnan(v) for v in L._median_mad(np.array([1.0, np.nan, 3.0, 4.0])))
 
 
 def test_row_nanmedian_equals_numpy_nanmedian() -> None:

@@ -35,13 +35,6 @@ def test_block_medians_equal_sliding_window_medians() -> None:
             np.testing.assert_array_equal(Q._block_medians(a), ref)
 
 
-def test_median_equals_numpy() -> None:
-    rng = np.random.default_rng(22)
-    for n in (1, 2, 9, 10, 5001):
-        x = rng.normal(size=n)
-        assert Q._median(x) == np.median(x)  # numpy.median is the reference
-
-
 def test_skewness_and_kurtosis_equal_scipy_stats() -> None:
     rng = np.random.default_rng(23)
     h = rng.gamma(2.0, 1e-11, size=(64, 64))  # skewed heights
