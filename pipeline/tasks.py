@@ -28,7 +28,7 @@ from pipeline.io.staging import (
     read_staged,
     read_staged_record,
     staged_header,
-    staging_dir,
+    staged_path,
     write_staged,
     write_staged_record,
 )
@@ -183,10 +183,9 @@ def _cached_survey(store: str, key: str, path: str) -> SurveyResult | None:
     record = read_staged_record(store, "curves", key)
     if record is None:
         return None
-    folder = staging_dir(store) / "curves"
     try:
-        table = read_staged(folder / f"{key}-table.nc")
-        bmap = read_staged(folder / f"{key}-map.nc") if record["map"] else None
+        table = read_staged(staged_path(store, "curves", f"{key}-table"))
+        bmap = read_staged(staged_path(store, "curves", f"{key}-map")) if record["map"] else None
         return SurveyResult(path=path, kind=str(record["kind"]), sha256=str(record["sha256"]),
                             sidecar_sha256=str(record["sidecar_sha256"]),
                             attrs=dict(record["attrs"]), curve_table=table, barrier_map=bmap,

@@ -28,7 +28,8 @@ import h5py
 import numpy as np
 import xarray as xr
 
-__all__ = ["is_grid", "read_attrs", "read_grid", "read_grid_file", "write_grid", "write_grid_file"]
+__all__ = ["dimension_sizes", "is_grid", "read_attrs", "read_grid", "read_grid_file", "write_grid",
+           "write_grid_file"]
 
 #: attributes netCDF-4 keeps for its own bookkeeping; never user attributes
 _HIDDEN = frozenset({"REFERENCE_LIST", "CLASS", "DIMENSION_LIST", "NAME", "_Netcdf4Dimid",
@@ -151,7 +152,7 @@ def read_grid(group: h5py.Group, variables: Iterable[str] | None = None) -> xr.D
     names = list(group)
     for name in names:
         h5 = group[name]
-        if h5.attrs.get("CLASS") == b"DIMENSION_SCALE":
+        if _is_scale(h5):
             if "_Netcdf4Dimid" not in h5.attrs or h5.ndim != 1:
                 raise ValueError(f"dimension {name!r} has no netCDF-4 dimension id")
             scales[int(h5.attrs["_Netcdf4Dimid"])] = name
@@ -175,6 +176,15 @@ def read_grid(group: h5py.Group, variables: Iterable[str] | None = None) -> xr.D
     if wanted is not None and wanted - set(data_vars):
         raise ValueError(f"no variable(s) {sorted(wanted - set(data_vars))}")
     return xr.Dataset(data_vars, coords=coords, attrs=read_attrs(group.attrs))
+
+
+def _is_scale(obj: h5py.HLObject) -> bool:
+    return bool(obj.attrs.get("CLASS") == b"DIMENSION_SCALE")
+
+
+def dimension_sizes(group: h5py.Group) -> dict[str, int]:
+    """The netCDF dimensions of ``group`` and their sizes, without reading any array."""
+    return {name: int(obj.shape[0]) for name, obj in group.items() if _is_scale(obj)}
 
 
 def _values(h5: h5py.Dataset) -> np.ndarray:

@@ -21,7 +21,13 @@ import numpy as np
 import xarray as xr
 
 from pipeline.errors import StoreError
-from pipeline.io.h5grid import is_grid, read_attrs, read_grid_file, write_grid_file
+from pipeline.io.h5grid import (
+    dimension_sizes,
+    is_grid,
+    read_attrs,
+    read_grid_file,
+    write_grid_file,
+)
 from pipeline.model import sanitize_id
 
 __all__ = [
@@ -32,6 +38,7 @@ __all__ = [
     "staged_attrs",
     "staged_frames",
     "staged_header",
+    "staged_path",
     "staging_dir",
     "temporary_path",
     "write_staged",
@@ -135,9 +142,15 @@ def _atomic_netcdf(ds: xr.Dataset, path: Path) -> Path:
     return path
 
 
+def staged_path(store: str | os.PathLike[str], kind: str, name: str, suffix: str = ".nc"
+                ) -> Path:
+    """Where a staged result of ``kind`` named ``name`` lives (the name sanitised)."""
+    return staging_dir(store) / kind / f"{sanitize_id(name)}{suffix}"
+
+
 def write_staged(store: str | os.PathLike[str], kind: str, name: str, ds: xr.Dataset) -> Path:
     """Stage one result (``kind`` = ``"frames"``, ``"curves"``, ...) atomically; return its path."""
-    return _atomic_netcdf(ds, staging_dir(store) / kind / f"{sanitize_id(name)}.nc")
+    return _atomic_netcdf(ds, staged_path(store, kind, name))
 
 
 def read_staged(path: str | os.PathLike[str], variables: Iterable[str] | None = None
@@ -168,8 +181,7 @@ def staged_header(path: str | os.PathLike[str]) -> tuple[dict[str, Any], dict[st
     try:
         with h5py.File(path, "r") as handle:
             attrs = read_attrs(handle.attrs)
-            sizes = {name: int(obj.shape[0]) for name, obj in handle.items()
-                     if obj.attrs.get("CLASS") == b"DIMENSION_SCALE"}
+            sizes = dimension_sizes(handle)
     except (OSError, ValueError) as exc:
         raise StoreError(f"staged result {path} is unreadable ({exc})") from None
     return attrs, sizes
@@ -183,12 +195,10 @@ def staged_frames(store: str | os.PathLike[str], kind: str = "frames") -> dict[s
     return {p.stem: p for p in sorted(folder.glob("*.nc")) if not p.name.startswith(".")}
 
 
-
-
 def write_staged_record(store: str | os.PathLike[str], kind: str, name: str,
                         record: Mapping[str, Any]) -> Path:
     """Stage a small JSON record (e.g. a drift-pair result) atomically; return its path."""
-    path = staging_dir(store) / kind / f"{sanitize_id(name)}.json"
+    path = staged_path(store, kind, name, ".json")
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = temporary_path(path)
     try:
@@ -204,7 +214,7 @@ def read_staged_record(store: str | os.PathLike[str], kind: str, name: str
                        ) -> dict[str, Any] | None:
     """A record staged by :func:`write_staged_record`, or None if there is none (or it cannot
     be read: a record is a cache, recomputed when in doubt)."""
-    path = staging_dir(store) / kind / f"{sanitize_id(name)}.json"
+    path = staged_path(store, kind, name, ".json")
     try:
         record = json.loads(path.read_text())
     except (OSError, ValueError):
