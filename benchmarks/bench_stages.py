@@ -24,7 +24,6 @@ from __future__ import annotations
 
 import argparse
 import functools
-import importlib.util
 import json
 import statistics
 import tempfile
@@ -35,21 +34,10 @@ from typing import Any
 
 import numpy as np
 import xarray as xr
-
-HERE = Path(__file__).resolve()
+from bench_pipeline import make_frames  # one frame maker for both benchmarks
 
 STAGES = ("read", "reconstruct_height", "flag_tip_changes", "repair_scars", "level_lines",
           "level_terraces", "assess_quality")
-
-
-def _frame_maker() -> Callable[..., list[Path]]:
-    """``make_frames`` of ``bench_pipeline.py``: one frame maker for both benchmarks."""
-    spec = importlib.util.spec_from_file_location("bench_pipeline", HERE.parent /
-                                                  "bench_pipeline.py")
-    assert spec is not None and spec.loader is not None
-    mod = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(mod)
-    return mod.make_frames
 
 
 def _run_frame(path: Path, cfg: Any
@@ -172,7 +160,7 @@ def main() -> None:
     from pipeline.config import parse_config
 
     cfg = parse_config({})
-    frames = functools.partial(_frame_maker(), noise=not args.noise_free)
+    frames = functools.partial(make_frames, noise=not args.noise_free)
     snap: dict[str, np.ndarray] = {}
     table: dict[int, dict[str, float]] = {}
     with tempfile.TemporaryDirectory() as tmp:

@@ -20,23 +20,13 @@ import statistics
 import subprocess
 import sys
 import tempfile
-from collections.abc import Callable
 from pathlib import Path
+
+from bench_pipeline import ONE_THREAD, make_frames  # the same frames, one thread each
 
 HERE = Path(__file__).resolve()
 ROOT = HERE.parents[1]
 BENCH = HERE.parent / "bench_pipeline.py"
-ONE_THREAD = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
-
-
-def _frame_maker() -> Callable[..., list[Path]]:  # the frames of bench_pipeline.py
-    import importlib.util
-
-    spec = importlib.util.spec_from_file_location("bench_pipeline", BENCH)
-    assert spec is not None and spec.loader is not None
-    mod = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(mod)
-    return mod.make_frames
 
 
 def _seconds(tree: Path, folder: Path, workers: int) -> float:
@@ -63,7 +53,7 @@ def main() -> None:
                         args.against], check=True)
         try:
             folder = Path(tmp) / "frames"
-            _frame_maker()(folder, args.frames, args.size)
+            make_frames(folder, args.frames, args.size)
             times: dict[tuple[str, int], list[float]] = {}
             for _ in range(args.repeat):
                 for name, tree in (("other", other), ("this", ROOT)):
