@@ -184,6 +184,9 @@ def main() -> None:
         mode, folder, store, workers = args.child
         child(mode, folder, store, int(workers))
         return
+    if args.frames < 6:
+        ap.error("--frames must be at least 6 (a short run of a third of them, and at least four "
+                 "frames more for the marginal cost)")
 
     with tempfile.TemporaryDirectory() as tmp:
         tmp = Path(tmp)
