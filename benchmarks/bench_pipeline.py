@@ -62,7 +62,7 @@ def make_frames(folder: Path, n: int, size: int, seed: int = 0, *, noise: bool =
     folder.mkdir(parents=True, exist_ok=True)
     rng = np.random.default_rng(seed)
     surface = random_surface(rng, extent_m=(-30e-9, 30e-9, -30e-9, 30e-9), n_steps=3,
-                             corrugation_m=2e-11, n_adsorbates=6)
+                             corrugation_m=2e-11, n_adsorbates=40)
     t0 = datetime(2026, 3, 14, 22, 0, 0)
     line_time = 0.02 * size / 128
     flaws = ({"current_noise_fraction": 0.02, "z_noise_m": 2e-12, "line_offsets_m": 2e-11,

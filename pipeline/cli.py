@@ -73,6 +73,14 @@ def _nm_per_min(v_m_per_s: float) -> float:
     return v_m_per_s * 1e9 * 60.0
 
 
+def _drift_line(vx_m_per_s: float, vy_m_per_s: float) -> str:
+    """The run's drift velocity, or that it could not be measured (NaN: no usable frame pair)."""
+    if vx_m_per_s == vx_m_per_s and vy_m_per_s == vy_m_per_s:
+        return (f"drift {_nm_per_min(vx_m_per_s):+.3f}, {_nm_per_min(vy_m_per_s):+.3f} nm/min "
+                "(x, y)")
+    return "drift not measured (no frame pair registered reliably); frames not drift-corrected"
+
+
 def _fmt_pm(value: Any) -> str:
     try:
         v = float(value)
@@ -210,9 +218,7 @@ def _print_summary(summary: Any, *, quiet: bool) -> None:
         out.print(f"work function {summary.work_function_eV:.3f} ± "
                   f"{summary.work_function_uncertainty_eV:.3f} eV", highlight=False)
         if summary.drift_velocity_m_per_s:
-            vx, vy = summary.drift_velocity_m_per_s
-            out.print(f"drift {_nm_per_min(vx):+.3f}, {_nm_per_min(vy):+.3f} nm/min (x, y)",
-                      highlight=False)
+            out.print(_drift_line(*summary.drift_velocity_m_per_s), highlight=False)
     line = (f"{summary.n_frames} frame(s) in {summary.store}, "
             f"{len(summary.failures)} input(s) failed")
     (err if summary.failures else out).print(line, highlight=False)
@@ -256,10 +262,9 @@ def show(store: Annotated[Path, typer.Argument(help="an isogap store")]) -> None
     out.print(f"work function: {float(ra.get('work_function_eV', float('nan'))):.3f} ± "
               f"{float(ra.get('work_function_uncertainty_eV', float('nan'))):.3f} eV "
               f"({ra.get('barrier_method', '?')})", highlight=False)
-    vx = float(ra.get("drift_velocity_x_m_per_s", float("nan")))
-    vy = float(ra.get("drift_velocity_y_m_per_s", float("nan")))
-    if vx == vx:
-        out.print(f"drift: {_nm_per_min(vx):+.3f}, {_nm_per_min(vy):+.3f} nm/min (x, y)",
+    if "drift_model" in ra:
+        out.print(_drift_line(float(ra.get("drift_velocity_x_m_per_s", float("nan"))),
+                              float(ra.get("drift_velocity_y_m_per_s", float("nan")))),
                   highlight=False)
     if failures:
         out.print(f"[red]{len(failures)} failed input(s):[/]")

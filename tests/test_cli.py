@@ -216,3 +216,12 @@ def test_reprocess_of_a_non_store_exits_2(tmp_path):
     junk.write_text("x")
     r = invoke("reprocess", junk)
     assert r.exit_code == 2 and "not a readable HDF5 store" in r.output
+
+
+def test_drift_line_says_when_drift_was_not_measured():
+    from pipeline.cli import _drift_line
+
+    # 1e-11 m/s × 60 s/min = 0.6 nm/min (unit arithmetic)
+    assert _drift_line(1e-11, -0.5e-11) == "drift +0.600, -0.300 nm/min (x, y)"
+    nan = float("nan")
+    assert "not measured" in _drift_line(nan, nan)  # not "+nan" or a fake zero

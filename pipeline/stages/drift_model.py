@@ -142,12 +142,17 @@ class DriftModel:
 
     @property
     def velocity_x_m_per_s(self) -> float:
-        """Run-mean drift velocity (x): the constant velocity, or the mean over the fitted span."""
+        """Run-mean drift velocity (x): the constant velocity, or the mean over the fitted span
+        (NaN when nothing was measured: the zero coefficients of that model are no finding)."""
+        if not self.is_usable:
+            return math.nan
         return float(self._mean_velocity_functional() @ self.coef_x)
 
     @property
     def velocity_y_m_per_s(self) -> float:
-        """Run-mean drift velocity (y)."""
+        """Run-mean drift velocity (y); NaN when nothing was measured."""
+        if not self.is_usable:
+            return math.nan
         return float(self._mean_velocity_functional() @ self.coef_y)
 
     @property

@@ -262,6 +262,9 @@ def register_images(
         result = Pass(coarse.shift_y * f, coarse.shift_x * f, coarse.confidence,
                       coarse.error, tuple(c * f * f for c in coarse.cov), coarse.peak)
         est = (result.shift_y, result.shift_x)
+        # a global ambiguity seen by the coarse pass stays, and so does one seen by a template
+        # pass before it was re-centred (a ridge of near-equal maxima moves the window along)
+        lowest = coarse.confidence
         for _ in range(MAX_REFINE_PASSES if coarse.confidence > 0 else 0):
             ky, kx = round(est[0]), round(est[1])
             if min(ny - abs(ky), nx - abs(kx)) < MIN_REFINE_OVERLAP_PX:
@@ -278,9 +281,8 @@ def register_images(
             if not p.confidence > 0:
                 break
             est = (p.shift_y + ky, p.shift_x + kx)
-            # a global ambiguity seen by the coarse pass stays: the smaller confidence wins
-            result = Pass(est[0], est[1], min(p.confidence, coarse.confidence), p.error, p.cov,
-                          p.peak)
+            lowest = min(lowest, p.confidence)
+            result = Pass(est[0], est[1], lowest, p.error, p.cov, p.peak)
             if abs(round(est[0]) - ky) <= RECENTRE_PX and abs(round(est[1]) - kx) <= RECENTRE_PX:
                 break  # the template match is unbiased within its margin: done
     cyy, cyx, cxx = result.cov

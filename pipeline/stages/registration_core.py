@@ -290,6 +290,13 @@ def parabolic_peak(surface: np.ndarray, jy: int, jx: int, *, wrap: bool) -> tupl
     return dy, dx
 
 
+#: Block recentrings of :func:`upsample_peak` (each climbs up to ~0.2 px). On the elongated
+#: peak of a step edge the parabolic start can be a pixel or more off the maximum; three
+#: recentrings then stopped on the block's edge, leaving no curvature (infinite uncertainty,
+#: confidence 0) for a good match. Most searches stop after the first block.
+MAX_RECENTRE = 8
+
+
 def upsample_peak(
     blocks: Callable[[np.ndarray, np.ndarray, int], np.ndarray], sy: float, sx: float, u: int,
     start: tuple[float, float] | None = None,
@@ -297,8 +304,9 @@ def upsample_peak(
     """Locate the maximum of ``blocks(ty, tx, q)`` on a 1/u grid around ``(sy, sx)``.
 
     Small matrix-DFT blocks instead of one of ``1.5u × 1.5u`` points: about ±0.2 px at
-    ``1/u`` spacing around a sub-pixel ``start`` (recentred, at most three times, while the
-    maximum lands on the block's edge), then a three-point parabola through the final maximum.
+    ``1/u`` spacing around a sub-pixel ``start`` (recentred, at most :data:`MAX_RECENTRE`
+    times, while the maximum lands on the block's edge), then a three-point parabola through
+    the final maximum.
     ``start`` is the whole-pixel peak ``(sy, sx)`` plus the parabolic offsets on the whole-pixel
     surface (:func:`parabolic_peak`); without it a first block of 7 × 7 points at 0.25 px
     (±0.75 px around ``(sy, sx)``) finds it. Either way the search climbs to the same local
@@ -320,7 +328,7 @@ def upsample_peak(
     jy = jx = 0
     step = 1.0
     for k, (step, half, q) in enumerate(stages):
-        for _ in range(3):  # recentre when the maximum lands on the edge of the block
+        for _ in range(MAX_RECENTRE):  # recentre while the maximum lands on the block's edge
             if k == len(stages) - 1 and u > 1:
                 cy, cx = round(cy * u) / u, round(cx * u) / u
             offs = np.arange(-half, half + 1) * step

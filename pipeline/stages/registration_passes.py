@@ -202,7 +202,9 @@ def register_template(
         return FAILED
     padded = np.full((surface.shape[0] + 2, surface.shape[1] + 2), -1.0)
     padded[1:-1, 1:-1] = surface  # no wrap-around for the local maxima
-    uniqueness = lobe_uniqueness(padded, jy + 1, jx + 1, peak)
+    # the coefficient's shortfall from 1 is what the images differ by: maxima closer to the
+    # peak than that are indistinguishable from it
+    uniqueness = lobe_uniqueness(padded, jy + 1, jx + 1, peak, indistinct=1.0 - peak)
 
     def block(ty: np.ndarray, tx: np.ndarray, q: int) -> np.ndarray:
         return ncc(dft_block(cross, shape, ty, tx, q), *channels.block(ty, tx, q))

@@ -46,13 +46,21 @@ def _sym2_inverse(m: np.ndarray) -> np.ndarray:
     return np.array([[c / det, -b / det], [-b / det, a / det]])
 
 
-def lobe_uniqueness(surface: np.ndarray, py: int, px: int, peak: float) -> float:
+def lobe_uniqueness(surface: np.ndarray, py: int, px: int, peak: float, *,
+                    indistinct: float = 0.0) -> float:
     """``1 − second/peak`` with ``second`` the highest local maximum outside the peak's lobe.
 
     The lobe is the ellipse of 2.5 peak widths along the principal axes of the peak's curvature
     (coarse 3 × 3 Hessian), at least :data:`PEAK_EXCLUSION_PX` pixels: bumps along the ridge of
     a step edge belong to the main peak (their spread is in the covariance), separate peaks
-    (a lattice translation, a chance match) compete.
+    (a lattice translation, a chance match) compete. So does, inside the lobe too, any local
+    maximum beyond :data:`PEAK_EXCLUSION_PX` that is within ``indistinct`` of the peak: for a
+    correlation coefficient the peak's own shortfall ``1 − peak`` is the size of the
+    differences between the two images (noise, and what the frames' distortions leave), and a
+    match elsewhere that is better than that by less cannot be told from it. That is a ridge
+    holding a row of near-equal maxima — a straight step edge over a periodic remainder (a
+    lattice, scan lines) that the Fourier notch did not remove — where the covariance from the
+    peak's curvature sees only one of them.
     """
     ny, nx = surface.shape
     ym, yp, xm, xp = (py - 1) % ny, (py + 1) % ny, (px - 1) % nx, (px + 1) % nx
@@ -74,8 +82,10 @@ def lobe_uniqueness(surface: np.ndarray, py: int, px: int, peak: float) -> float
     dyl = ((ly - py + ny // 2) % ny - ny // 2).astype(float)
     dxl = ((lx - px + nx // 2) % nx - nx // 2).astype(float)
     maha = a * dyl**2 + 2 * b * dyl * dxl + c * dxl**2
-    far = (maha > 2.5**2) & (dyl**2 + dxl**2 > PEAK_EXCLUSION_PX**2)
-    second = float(surface.ravel()[lm[far]].max()) if np.any(far) else 0.0
+    values = surface.ravel()[lm]
+    far = ((maha > 2.5**2) | (values >= peak - indistinct)) & \
+        (dyl**2 + dxl**2 > PEAK_EXCLUSION_PX**2)
+    second = float(values[far].max()) if np.any(far) else 0.0
     return float(np.clip(1.0 - max(second, 0.0) / peak, 0.0, 1.0))
 
 

@@ -539,6 +539,18 @@ def test_correct_drift_with_unusable_model(rough):
     np.testing.assert_array_equal(out["height"].values, ds["height"].values)
 
 
+def test_unmeasured_drift_is_nan_not_zero():
+    # a model fitted to no usable pair holds zero coefficients (it corrects nothing); its
+    # velocity is not a measured zero, so the run table and the summaries must say NaN
+    none = fit_drift_model([0.0, 1.0, 2.0], [np.nan, 1e-9], [np.nan, 2e-9], uncertainties_m=1.0,
+                           confidence=[0.0, 0.1])
+    assert not none.is_usable
+    assert math.isnan(none.velocity_x_m_per_s) and math.isnan(none.velocity_y_m_per_s)
+    table = drift_table(["a", "b", "c"], [0.0, 1.0, 2.0], [], none)
+    for key in ("drift_velocity_x_m_per_s", "drift_rate_y_nm_per_min", "drift_rate_nm_per_min"):
+        assert math.isnan(table.attrs[key])
+
+
 def test_correct_drift_bad_options(rough):
     ds = make_frame(rough, n=32)
     with pytest.raises(ProcessingError, match="order = 2"):

@@ -128,3 +128,16 @@ def test_results_do_not_depend_on_what_was_registered_before():
     fresh = register_images(a, b)
     assert first == again == fresh  # caches are keyed on shapes and options only
     assert first.shift_px == pytest.approx((3.0, -5.0), abs=0.02)  # the roll applied above
+
+
+def test_peak_search_climbs_to_a_peak_far_from_its_start():
+    # an exact quadratic peak 1.2 px from the start: each 1/20 px block spans ±0.2 px, so the
+    # search must recentre six times; with three it stopped on the block's edge and returned no
+    # curvature (an infinite uncertainty for a good match). Exact quadratic: common practice
+    def f(ty, tx, q=None):
+        return -((ty[:, None] - 1.53) ** 2 + 0.5 * (tx[None, :] + 0.88) ** 2)
+
+    sy, sx, hessian, peak = core.upsample_peak(f, 0.0, 0.0, 20, start=(0.33, 0.02))
+    assert hessian is not None and peak == pytest.approx(0.0, abs=1e-12)
+    assert (sy, sx) == (pytest.approx(1.53, abs=1e-9), pytest.approx(-0.88, abs=1e-9))
+    assert np.allclose(hessian, [[2.0, 0.0], [0.0, 1.0]], atol=1e-9)  # minus the Hessian
