@@ -138,6 +138,8 @@ def test_peak_search_climbs_to_a_peak_far_from_its_start():
         return -((ty[:, None] - 1.53) ** 2 + 0.5 * (tx[None, :] + 0.88) ** 2)
 
     sy, sx, hessian, peak = core.upsample_peak(f, 0.0, 0.0, 20, start=(0.33, 0.02))
-    assert hessian is not None and peak == pytest.approx(0.0, abs=1e-12)
+    assert hessian is not None
+    # the value at the 1/20 px grid maximum (1.55, -0.90), before the parabola
+    assert peak == pytest.approx(-(0.02**2 + 0.5 * 0.02**2), abs=1e-12)
     assert (sy, sx) == (pytest.approx(1.53, abs=1e-9), pytest.approx(-0.88, abs=1e-9))
     assert np.allclose(hessian, [[2.0, 0.0], [0.0, 1.0]], atol=1e-9)  # minus the Hessian
