@@ -50,7 +50,7 @@ from pipeline.stages.registration_passes import (
     register_template,
 )
 from pipeline.stages.registration_quality import PEAK_EXCLUSION_PX as PEAK_EXCLUSION_PX
-from pipeline.stages.registration_quality import sym2_eigenvalues
+from pipeline.stages.registration_quality import sym2_eigenvalues, uniqueness
 
 __all__ = ["Registration", "register_images"]
 
@@ -128,6 +128,63 @@ COARSE_SIZE_PX = 64
 #: REFINE_MIN_MARGIN_PX pixels.
 REFINE_MARGIN_DIVISOR = 16
 REFINE_MIN_MARGIN_PX = 4
+
+
+#: Rivals of the coarse peak beyond the template's reach that would cut the confidence below
+#: this (``1 − rival/peak``) are checked by a full-resolution match at their place (at most
+#: :data:`MAX_RIVAL_CHECKS` of them, strongest first).
+RIVAL_CHECK_BELOW = 0.5
+MAX_RIVAL_CHECKS = 3
+
+
+def _template_at(a: np.ndarray, b: np.ndarray, mask_a: np.ndarray | None,
+                 mask_b: np.ndarray | None, ky: int, kx: int, f: int, u: int, win: str,
+                 workers: int | None) -> tuple[Pass, int] | None:
+    """A template match on the crops that overlap at the whole-pixel offset ``(ky, kx)``, and
+    its search margin; None if the overlap is too small or the match fails."""
+    ny, nx = a.shape
+    if min(ny - abs(ky), nx - abs(kx)) < MIN_REFINE_OVERLAP_PX:
+        return None
+    ra, rb = overlap(ny, ky)
+    ca, cb = overlap(nx, kx)
+    ma = None if mask_a is None else np.asarray(mask_a, bool)[ra, ca]
+    mb = None if mask_b is None else np.asarray(mask_b, bool)[rb, cb]
+    crop = (ra.stop - ra.start, ca.stop - ca.start)
+    margin = max(REFINE_MIN_MARGIN_PX, min(crop) // REFINE_MARGIN_DIVISOR, 2 * f)
+    if min(crop) - 4 * margin < MIN_REFINE_OVERLAP_PX:
+        return None
+    p = register_template(a[ra, ca], b[rb, cb], ma, mb, u, win, margin, workers)
+    return (p, margin) if p.confidence > 0 else None
+
+
+def _coarse_after_checks(coarse: Pass, found: Pass, reach: float, a: np.ndarray,
+                         b: np.ndarray, mask_a: np.ndarray | None, mask_b: np.ndarray | None,
+                         f: int, u: int, win: str, workers: int | None) -> float:
+    """The coarse pass's confidence once its rivals are confronted with the full resolution.
+
+    Rivals within ``reach`` (binned px, either axis) of the coarse peak lay in the first
+    template pass's window and were examined there. Of the others, the strongest (those that
+    would cut the confidence below :data:`RIVAL_CHECK_BELOW`, at most
+    :data:`MAX_RIVAL_CHECKS`) are matched at full resolution at their own place: one whose
+    match falls short of ``found`` by more than ``found``'s own shortfall ``1 − ρ`` is told
+    apart and dropped; one that comes as close is an ambiguity (the confidence becomes
+    ``1 − ρ_rival/ρ``). The rest count as before. Binned and windowed, a long straight step
+    gives such far maxima along its ridge, which the adsorbates on its terraces rule out.
+    """
+    if coarse.rivals is None or not coarse.rivals.size:
+        return coarse.confidence
+    r = coarse.rivals
+    keep = np.maximum(np.abs(r[:, 0]), np.abs(r[:, 1])) > reach
+    strong = np.flatnonzero(keep & (r[:, 2] > (1.0 - RIVAL_CHECK_BELOW) * coarse.peak))
+    for i in strong[np.argsort(-r[strong, 2])][:MAX_RIVAL_CHECKS]:
+        ky, kx = (round((c + d) * f) for c, d in ((coarse.shift_y, r[i, 0]),
+                                                  (coarse.shift_x, r[i, 1])))
+        matched = _template_at(a, b, mask_a, mask_b, ky, kx, f, u, win, workers)
+        rival = None if matched is None else matched[0]
+        if rival is not None and rival.peak >= found.peak - (1.0 - found.peak):
+            return float(np.clip(1.0 - rival.peak / found.peak, 0.0, 1.0))
+        keep[i] = False  # no match there at full resolution, or a clearly worse one
+    return uniqueness(r[keep], coarse.peak) * coarse.match
 
 
 def register_images(
@@ -262,25 +319,23 @@ def register_images(
         result = Pass(coarse.shift_y * f, coarse.shift_x * f, coarse.confidence,
                       coarse.error, tuple(c * f * f for c in coarse.cov), coarse.peak)
         est = (result.shift_y, result.shift_x)
-        # a global ambiguity seen by the coarse pass stays, and so does one seen by a template
-        # pass before it was re-centred (a ridge of near-equal maxima moves the window along)
-        lowest = coarse.confidence
+        # a global ambiguity seen by the coarse pass stays (a rival beyond the template's
+        # search window, unless a full-resolution match there is clearly worse), and so does
+        # one seen by a template pass before it was re-centred (a ridge of near-equal maxima
+        # moves the window along)
+        lowest = math.inf
         for _ in range(MAX_REFINE_PASSES if coarse.confidence > 0 else 0):
             ky, kx = round(est[0]), round(est[1])
-            if min(ny - abs(ky), nx - abs(kx)) < MIN_REFINE_OVERLAP_PX:
+            matched = _template_at(a, b, reference_mask, moving_mask, ky, kx, f, u, win, workers)
+            if matched is None:
                 break
-            ra, rb = overlap(ny, ky)
-            ca, cb = overlap(nx, kx)
-            ma = None if reference_mask is None else np.asarray(reference_mask, bool)[ra, ca]
-            mb = None if moving_mask is None else np.asarray(moving_mask, bool)[rb, cb]
-            crop = (ra.stop - ra.start, ca.stop - ca.start)
-            margin = max(REFINE_MIN_MARGIN_PX, min(crop) // REFINE_MARGIN_DIVISOR, 2 * f)
-            if min(crop) - 4 * margin < MIN_REFINE_OVERLAP_PX:
-                break
-            p = register_template(a[ra, ca], b[rb, cb], ma, mb, u, win, margin, workers)
-            if not p.confidence > 0:
-                break
+            p, margin = matched
             est = (p.shift_y + ky, p.shift_x + kx)
+            if lowest == math.inf:  # the first template pass searched ±margin around the
+                lowest = p.confidence  # coarse peak at full resolution
+                lowest = min(lowest, _coarse_after_checks(
+                    coarse, p, (margin - 1) / f, a, b, reference_mask, moving_mask, f, u, win,
+                    workers))
             lowest = min(lowest, p.confidence)
             result = Pass(est[0], est[1], lowest, p.error, p.cov, p.peak)
             if abs(round(est[0]) - ky) <= RECENTRE_PX and abs(round(est[1]) - kx) <= RECENTRE_PX:

@@ -24,7 +24,14 @@ from pipeline.stages.registration_core import (
     window_sums,
 )
 from pipeline.stages.registration_lattice import periodic_notch
-from pipeline.stages.registration_quality import energy, lobe_uniqueness, ls_covariance, raw_hessian
+from pipeline.stages.registration_quality import (
+    energy,
+    lobe_rivals,
+    lobe_uniqueness,
+    ls_covariance,
+    raw_hessian,
+    uniqueness,
+)
 from pipeline.stages.registration_template import template_channels, template_data
 
 #: Fewest usable pixels (fraction of the image) for a registration to be attempted at all.
@@ -41,6 +48,10 @@ class Pass:
     error: float
     cov: tuple[float, float, float]
     peak: float
+    #: the competing correlation maxima ``(dy, dx, value)`` relative to the peak, and the factor
+    #: the uniqueness was multiplied by (whole-image passes)
+    rivals: np.ndarray | None = None
+    match: float = 1.0
 
 
 FAILED = Pass(0.0, 0.0, 0.0, 1.0, (math.inf, 0.0, math.inf), 0.0)
@@ -98,7 +109,7 @@ def register_once(
     peak = float(corr[py, px])
     if not peak > 0:
         return FAILED
-    confidence = lobe_uniqueness(corr, py, px, peak)
+    rivals = lobe_rivals(corr, py, px, peak)
     sy = float(py - ny if py > ny // 2 else py)
     sx = float(px - nx if px > nx // 2 else px)
     dy, dx = parabolic_peak(corr, py, px, wrap=True)
@@ -111,7 +122,8 @@ def register_once(
     cc = float(dft_block(cross, shape, np.array([shift_y]), np.array([shift_x]))[0, 0])
     error = math.sqrt(max(0.0, 1.0 - cc * cc / total)) if cc > 0 else 1.0
     # uniqueness of the peak times the correlation coefficient of the match
-    confidence *= max(cc, 0.0) / math.sqrt(total)
+    match = max(cc, 0.0) / math.sqrt(total)
+    confidence = uniqueness(rivals, peak) * match
 
     # least-squares covariance: residual noise over the gradient structure of the images.
     # Per-pixel variance of the difference image: two images of variances σa², σb² that
@@ -133,7 +145,7 @@ def register_once(
         tensor, nn = hraw, 0.0
     cov = ls_covariance(tensor, var_d, w4 / w2, hessian, nn, grid)
     return Pass(shift_y, shift_x, confidence, float(min(error, 1.0)),
-                (float(cov[0, 0]), float(cov[0, 1]), float(cov[1, 1])), peak)
+                (float(cov[0, 0]), float(cov[0, 1]), float(cov[1, 1])), peak, rivals, match)
 
 
 def register_template(

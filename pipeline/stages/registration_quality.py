@@ -48,7 +48,20 @@ def _sym2_inverse(m: np.ndarray) -> np.ndarray:
 
 def lobe_uniqueness(surface: np.ndarray, py: int, px: int, peak: float, *,
                     indistinct: float = 0.0) -> float:
-    """``1 − second/peak`` with ``second`` the highest local maximum outside the peak's lobe.
+    """``1 − second/peak`` with ``second`` the highest of the :func:`lobe_rivals`."""
+    return uniqueness(lobe_rivals(surface, py, px, peak, indistinct=indistinct), peak)
+
+
+def uniqueness(rivals: np.ndarray, peak: float) -> float:
+    """``1 − second/peak`` with ``second`` the highest of the rivals ``(dy, dx, value)``."""
+    second = float(rivals[:, 2].max()) if rivals.size else 0.0
+    return float(np.clip(1.0 - max(second, 0.0) / peak, 0.0, 1.0))
+
+
+def lobe_rivals(surface: np.ndarray, py: int, px: int, peak: float, *,
+                indistinct: float = 0.0) -> np.ndarray:
+    """The local maxima ``(dy, dx, value)`` that compete with the peak at ``(py, px)``:
+    those outside the peak's lobe.
 
     The lobe is the ellipse of 2.5 peak widths along the principal axes of the peak's curvature
     (coarse 3 × 3 Hessian), at least :data:`PEAK_EXCLUSION_PX` pixels: bumps along the ridge of
@@ -85,8 +98,7 @@ def lobe_uniqueness(surface: np.ndarray, py: int, px: int, peak: float, *,
     values = surface.ravel()[lm]
     far = ((maha > 2.5**2) | (values >= peak - indistinct)) & \
         (dyl**2 + dxl**2 > PEAK_EXCLUSION_PX**2)
-    second = float(values[far].max()) if np.any(far) else 0.0
-    return float(np.clip(1.0 - max(second, 0.0) / peak, 0.0, 1.0))
+    return np.column_stack([dyl[far], dxl[far], values[far]])
 
 
 def ls_covariance(signal_tensor: np.ndarray | None, var_d: float, factor: float,
