@@ -172,6 +172,32 @@ class DriftModel:
                 m_per_s_to_nm_per_min(self.velocity_y_m_per_s))
 
 
+#: Up to this many excluded pairs are warned about one by one; more are grouped by reason.
+MAX_LISTED_EXCLUSIONS = 4
+
+
+def exclusion_warnings(names: Sequence[str], reasons: Sequence[str]) -> list[str]:
+    """Warning texts for the pairs left out of the drift model (non-empty ``reasons``).
+
+    One line per pair while there are at most :data:`MAX_LISTED_EXCLUSIONS`; beyond that one
+    line per kind of reason (the text before its parenthesis) with the count and the first
+    pairs, so that a run whose pairs all fail does not bury its other messages. Each pair's
+    full reason stays in the drift table.
+    """
+    excluded = [(name, why) for name, why in zip(names, reasons, strict=True) if why]
+    if len(excluded) <= MAX_LISTED_EXCLUSIONS:
+        return [f"{name}: excluded from the drift model: {why}" for name, why in excluded]
+    groups: dict[str, list[str]] = {}
+    for name, why in excluded:
+        groups.setdefault(why.split(" (")[0], []).append(name)
+    out = []
+    for kind, members in groups.items():
+        shown = ", ".join(members[:2]) + (", …" if len(members) > 2 else "")
+        out.append(f"{len(members)} of {len(names)} pairs excluded from the drift model: "
+                   f"{kind} ({shown}; each pair's reason is in the drift table)")
+    return out
+
+
 def _none_model(n_pairs: int, reasons: Sequence[str], warnings: list[str],
                 labels: tuple[str, ...]) -> DriftModel:
     warnings = [*warnings, "no usable frame pairs: drift not measured; frames are not corrected"]
@@ -337,9 +363,7 @@ def fit_drift_model(
     warnings: list[str] = []
     ok = np.array([not w for w in why])
     if not ok.any():
-        for k in range(n):
-            warnings.append(f"{names[k]}: excluded from the drift model: {why[k]}")
-        return _none_model(n, why, warnings, names)
+        return _none_model(n, why, exclusion_warnings(names, why), names)
 
     used_t = np.concatenate([t_a[ok], t_b[ok]])
     scale = float(max(np.max(np.abs(used_t)), 1.0))
@@ -387,9 +411,7 @@ def fit_drift_model(
     for chi, cov in ((chix, vx), (chiy, vy)):
         if math.isfinite(chi) and chi > 1:
             cov *= chi
-    for k in range(n):
-        if why[k]:
-            warnings.append(f"{names[k]}: excluded from the drift model: {why[k]}")
+    warnings += exclusion_warnings(names, why)
     return DriftModel(
         kind=model, coef_x=cx, coef_y=cy, cov_x=vx, cov_y=vy, time_scale_s=scale,
         t_first_s=float(used_t.min()), t_last_s=float(used_t.max()),

@@ -551,6 +551,27 @@ def test_unmeasured_drift_is_nan_not_zero():
         assert math.isnan(table.attrs[key])
 
 
+def test_many_exclusions_are_grouped_by_reason():
+    # a run of 8 frames whose 7 pairs all fail would otherwise print 7 near-identical lines
+    # and bury the message that matters (drift not measured): common practice for batch logs
+    t = np.arange(8.0)
+    none = fit_drift_model(t, np.full(7, 1e-9), np.full(7, 1e-9), uncertainties_m=1e-11,
+                           confidence=[0.1] * 6 + [0.9], tip_change=[False] * 6 + [True])
+    assert none.warnings[0] == ("6 of 7 pairs excluded from the drift model: low registration "
+                                "confidence (pair 0 (frames 0 → 1), pair 1 (frames 1 → 2), …; "
+                                "each pair's reason is in the drift table)")
+    assert none.warnings[1].startswith("1 of 7 pairs excluded from the drift model: tip change")
+    assert "drift not measured" in none.warnings[2]
+    assert len(none.warnings) == 3
+    # the full reason of each pair is kept
+    assert none.reasons[0] == "low registration confidence (0.10 < 0.30)"
+    # a few exclusions are still named one by one
+    few = fit_drift_model(t, np.full(7, 1e-9), np.full(7, 1e-9), uncertainties_m=1e-11,
+                          confidence=[0.1] + [0.9] * 6)
+    assert few.warnings == ("pair 0 (frames 0 → 1): excluded from the drift model: low "
+                            "registration confidence (0.10 < 0.30)",)
+
+
 def test_correct_drift_bad_options(rough):
     ds = make_frame(rough, n=32)
     with pytest.raises(ProcessingError, match="order = 2"):
