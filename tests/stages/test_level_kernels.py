@@ -14,7 +14,10 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from pipeline.stages import level as L
+from pipeline.stages.level import lines as Li
+from pipeline.stages.level import robust as R
+from pipeline.stages.level import scars as S
+from pipeline.stages.level import terraces as T
 
 
 def _arrays(rng: np.random.Generator) -> list[np.ndarray]:
@@ -30,10 +33,10 @@ def test_median_and_mad_equal_numpy() -> None:
     for x in _arrays(rng):
         med = np.median(x)  # numpy.median is the reference
         mad = np.median(np.abs(x - med))
-        assert L._median_mad(x) == (med, mad)
-        assert L._mad_scale(x) == L.MAD_TO_SIGMA * mad
+        assert R._median_mad(x) == (med, mad)
+        assert R._mad_scale(x) == R.MAD_TO_SIGMA * mad
     # numpy: NaN in, NaN out (the median itself: tests/stages/test_stats.py)
-    assert all(math.isnan(v) for v in L._median_mad(np.array([1.0, np.nan, 3.0, 4.0])))
+    assert all(math.isnan(v) for v in R._median_mad(np.array([1.0, np.nan, 3.0, 4.0])))
 
 
 def test_row_nanmedian_equals_numpy_nanmedian() -> None:
@@ -45,19 +48,19 @@ def test_row_nanmedian_equals_numpy_nanmedian() -> None:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # numpy warns on the all-NaN row
         ref = np.nanmedian(a, axis=1)  # numpy.nanmedian is the reference
-    np.testing.assert_array_equal(L._row_nanmedian(a), ref)
+    np.testing.assert_array_equal(R._row_nanmedian(a), ref)
 
 
 def test_reweighting_functions_are_the_textbook_ones() -> None:
     t = np.array([-np.inf, -6.0, -4.685, -4.6, -1.345, -1.0, 0.0, 0.5, 1.345, 2.0, 4.7, np.inf])
     # Tukey biweight (1 - (t/c)^2)^2 inside |t| < c (Beaton & Tukey, Technometrics 16, 147,
     # 1974), Huber weight min(1, k/|t|) (Huber, Ann. Math. Stat. 35, 73, 1964)
-    a = t / L.TUKEY_C
+    a = t / R.TUKEY_C
     with np.errstate(invalid="ignore", divide="ignore"):
         tukey = np.where(np.abs(a) < 1, (1 - a * a) ** 2, 0.0)
-        huber = np.where(np.abs(t) <= L.HUBER_K, 1.0, L.HUBER_K / np.abs(t))
-    np.testing.assert_array_equal(L._tukey_weights(t, np.empty_like(t)), tukey)
-    np.testing.assert_array_equal(L._huber_weights(t, np.empty_like(t)), huber)
+        huber = np.where(np.abs(t) <= R.HUBER_K, 1.0, R.HUBER_K / np.abs(t))
+    np.testing.assert_array_equal(R._tukey_weights(t, np.empty_like(t)), tukey)
+    np.testing.assert_array_equal(R._huber_weights(t, np.empty_like(t)), huber)
 
 
 @pytest.mark.parametrize("shape", [(60, 45), (3, 4), (1, 9), (8, 1)])
@@ -66,14 +69,14 @@ def test_binary_morphology_equals_ndimage(shape: tuple[int, int]) -> None:
     for p in (0.02, 0.3, 0.8):
         m = rng.random(shape) < p
         for it in (1, 2):  # scipy.ndimage.binary_dilation (cross structure) is the reference
-            np.testing.assert_array_equal(L._dilate_cross(m, it),
+            np.testing.assert_array_equal(S._dilate_cross(m, it),
                                           ndimage.binary_dilation(m, iterations=it))
         for r in (1, 4):
             square = np.ones((2 * r + 1,) * 2, bool)
-            np.testing.assert_array_equal(L._dilate_square(m, r),
+            np.testing.assert_array_equal(S._dilate_square(m, r),
                                           ndimage.binary_dilation(m, structure=square))
             np.testing.assert_array_equal(
-                L._close_rows(m, r),
+                S._close_rows(m, r),
                 ndimage.binary_closing(m, structure=np.ones((1, 2 * r + 1))))
 
 
@@ -83,7 +86,7 @@ def test_sobel_magnitude_equals_ndimage_within_an_ulp() -> None:
         x = rng.normal(size=shape) * 1e-10
         ref = np.hypot(ndimage.sobel(x, axis=1, mode="nearest"),
                        ndimage.sobel(x, axis=0, mode="nearest")) / 8.0  # scipy.ndimage
-        np.testing.assert_allclose(L._sobel_magnitude(x), ref, rtol=4.5e-16, atol=0)
+        np.testing.assert_allclose(Li._sobel_magnitude(x), ref, rtol=4.5e-16, atol=0)
 
 
 def _pairs_brute_force(labels: np.ndarray, reach: int) -> dict[tuple[int, int], int]:
@@ -109,13 +112,13 @@ def test_adjacent_pairs_equal_brute_force_count() -> None:
         lab, n = ndimage.label(~edges)  # 4-connected regions, as in the segmentation
         labels = lab - 1
         for reach in (1, 3):
-            assert L._adjacent_pairs(labels, n, reach) == _pairs_brute_force(labels, reach)
+            assert T._adjacent_pairs(labels, n, reach) == _pairs_brute_force(labels, reach)
 
 
 def test_grid_variance_equals_quadratic_form() -> None:
     rng = np.random.default_rng(6)
     u, v = np.linspace(-1, 1, 13), np.linspace(-1, 1, 9)
-    basis = L._Basis(u, v, 3, constant=True)
+    basis = R._Basis(u, v, 3, constant=True)
     a = rng.normal(size=(basis.n, basis.n))
     cov = a @ a.T
     iy, ix = np.divmod(np.arange(v.size * u.size), u.size)
@@ -133,7 +136,7 @@ def test_joint_fit_equals_lstsq_with_one_hot_design() -> None:
     z = phi.T @ [0.3, -1.2] + np.array([0.0, 1.0, 2.5, -0.7])[labels] + rng.normal(size=n)
     design = np.column_stack([phi.T, np.eye(t)[labels]])
     ref = np.linalg.lstsq(design, z, rcond=None)[0]  # numpy.linalg.lstsq is the reference
-    fit = L._fit(phi, z, labels, t, robust=False)
+    fit = R._fit(phi, z, labels, t, robust=False)
     np.testing.assert_allclose(fit.beta, ref, rtol=1e-10)
     np.testing.assert_allclose(fit.resid, z - design @ ref, rtol=0, atol=1e-10)
 
@@ -141,13 +144,13 @@ def test_joint_fit_equals_lstsq_with_one_hot_design() -> None:
 def test_whole_grid_robust_fit_equals_pixel_list_fit() -> None:
     rng = np.random.default_rng(8)
     ny, nx = 40, 56
-    basis = L._Basis(np.linspace(-1, 1, nx), np.linspace(-1, 1, ny), 2, constant=True)
+    basis = R._Basis(np.linspace(-1, 1, nx), np.linspace(-1, 1, ny), 2, constant=True)
     iy, ix = np.divmod(np.arange(ny * nx), nx)
     phi = basis.at_t(iy, ix)
     z = phi.T @ rng.normal(size=basis.n) + rng.normal(size=ny * nx)
     z[rng.random(z.size) < 0.05] += 20.0  # outliers for the biweight to reject
-    a = L._fit(phi, z, robust=True)
-    b = L._fit(phi, z, robust=True, grid=basis)  # same IRLS, separable sums
+    a = R._fit(phi, z, robust=True)
+    b = R._fit(phi, z, robust=True, grid=basis)  # same IRLS, separable sums
     assert a.n_iter == b.n_iter
     np.testing.assert_allclose(b.beta, a.beta, rtol=1e-10, atol=1e-12)
     np.testing.assert_array_equal(b.weights == 0, a.weights == 0)
@@ -158,7 +161,7 @@ def test_line_matching_is_the_same_block_by_block(monkeypatch: pytest.MonkeyPatc
     d = rng.normal(size=(50, 40))
     m = rng.random(d.shape) > 0.1
     u = np.linspace(-1, 1, 40)
-    whole = L._robust_line_differences(d, m, u, slopes=True)
-    monkeypatch.setattr(L, "_BLOCK_PIXELS", 7 * 40)  # blocks of 7 rows
-    for a, b in zip(L._robust_line_differences(d, m, u, slopes=True), whole, strict=True):
+    whole = Li._robust_line_differences(d, m, u, slopes=True)
+    monkeypatch.setattr(Li, "_BLOCK_PIXELS", 7 * 40)  # blocks of 7 rows
+    for a, b in zip(Li._robust_line_differences(d, m, u, slopes=True), whole, strict=True):
         np.testing.assert_array_equal(a, b)
