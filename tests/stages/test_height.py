@@ -453,7 +453,7 @@ def test_two_variable_nnls_matches_scipy(seed: int) -> None:
     """Reference library: scipy.optimize.nnls, on problems with no, one or both bounds active."""
     from scipy.optimize import nnls
 
-    from pipeline.stages.height import _nnls2
+    from pipeline.stages.height.noise import _nnls2
 
     rng = np.random.default_rng(seed)
     a = np.abs(rng.normal(size=(16, 2))) + 0.1

@@ -12,7 +12,10 @@ from scipy import fft as sfft
 from scipy import ndimage
 
 from pipeline.model import Flag
-from pipeline.stages import height as H
+from pipeline.stages.height import noise as No
+from pipeline.stages.height import reconstruct as Re
+from pipeline.stages.height import spectrum as Sp
+from pipeline.stages.height import traces as Tr
 
 
 @pytest.mark.parametrize("shape", [(64, 48), (7, 7), (6, 4), (13, 5)])
@@ -22,12 +25,12 @@ def test_dilation_and_peak_widening_equal_ndimage(shape: tuple[int, int]) -> Non
         m = rng.random(shape) < p
         for r in (1, 3):  # scipy.ndimage.binary_dilation with a square is the reference
             square = np.ones((2 * r + 1,) * 2, bool)
-            np.testing.assert_array_equal(H._dilate(m, r),
+            np.testing.assert_array_equal(Sp._dilate(m, r),
                                           ndimage.binary_dilation(m, structure=square))
         power = rng.random(shape)
         ref = ndimage.maximum_filter((power >= 1 - p).astype(np.uint8),
-                                     size=2 * H._PEAK_MARGIN_BINS + 1, mode="wrap") != 0
-        np.testing.assert_array_equal(H._peak_bins(power, 1 - p), ref)
+                                     size=2 * Sp._PEAK_MARGIN_BINS + 1, mode="wrap") != 0
+        np.testing.assert_array_equal(Sp._peak_bins(power, 1 - p), ref)
 
 
 def test_level_groups_are_the_stable_quantile_bins() -> None:
@@ -36,7 +39,7 @@ def test_level_groups_are_the_stable_quantile_bins() -> None:
                 np.repeat(rng.random(40), 125)):
         for n_bins in (2, 5, 16):
             ref = np.array_split(np.argsort(key, kind="stable"), n_bins)  # numpy reference
-            got = H._level_groups(key, n_bins)
+            got = No._level_groups(key, n_bins)
             assert all(np.array_equal(np.sort(a), np.sort(b))
                        for a, b in zip(got, ref, strict=True))
 
@@ -44,7 +47,7 @@ def test_level_groups_are_the_stable_quantile_bins() -> None:
 def test_buffered_fft_equals_scipy_fft() -> None:
     rng = np.random.default_rng(14)
     x = rng.normal(size=(48, 40))
-    fft = H._FFT2(x.shape)
+    fft = Sp._FFT2(x.shape)
     spec = fft.forward(x)
     np.testing.assert_allclose(spec, sfft.rfft2(x), rtol=1e-13, atol=1e-12)  # scipy.fft
     np.testing.assert_allclose(fft.inverse(spec), sfft.irfft2(spec, s=x.shape), rtol=1e-13,
@@ -65,9 +68,9 @@ def test_gap_fill_steps_equal_plain_landweber(rows: str) -> None:
     ref = x.copy()
     for _ in range(4):  # x[gap] -= (G² x)[gap], G² applied with scipy.fft (the reference)
         ref[gap] -= sfft.irfft2(sfft.rfft2(ref) * g2, s=(ny, nx))[gap]
-    fft = H._FFT2((ny, nx))
+    fft = Sp._FFT2((ny, nx))
     got = x.copy()
-    fill = H._GapFill(got, gap, fft)
+    fill = Sp._GapFill(got, gap, fft)
     spec = fft.forward(got)
     for _ in range(4):
         fill.step(spec, spec * g2)
@@ -80,8 +83,8 @@ def test_take_columns_equals_fancy_indexing() -> None:
     for nx in (4, 5, 64):
         a = rng.normal(size=(3, nx))
         for shift in (-3.7, -1.2, -0.003, 0.0, 0.4, 2.5):
-            for idx in H._bracket(nx, shift):
-                np.testing.assert_array_equal(H._take_columns(a, idx), a[:, idx])
+            for idx in Tr._bracket(nx, shift):
+                np.testing.assert_array_equal(Tr._take_columns(a, idx), a[:, idx])
 
 
 def test_remove_plane_equals_lstsq() -> None:
@@ -94,7 +97,7 @@ def test_remove_plane_equals_lstsq() -> None:
         design = np.column_stack([np.ones(ok.sum()), u[ok], v[ok]])
         coef = np.linalg.lstsq(design, z[ok], rcond=None)[0]  # numpy.linalg.lstsq reference
         ref = z - (coef[0] + coef[1] * u + coef[2] * v)
-        np.testing.assert_allclose(H._remove_plane(z, ok), ref, rtol=0, atol=1e-12)
+        np.testing.assert_allclose(Sp._remove_plane(z, ok), ref, rtol=0, atol=1e-12)
 
 
 def test_combined_traces_follow_the_documented_rule() -> None:
@@ -106,8 +109,8 @@ def test_combined_traces_follow_the_documented_rule() -> None:
     sf, sb = rng.uniform(0.5, 1.0, shape), rng.uniform(0.5, 1.0, shape)
     pf, pb = rng.normal(size=shape), rng.normal(size=shape)
     zero = np.zeros(shape, np.uint8)
-    fw, bw = H._Trace(hf, sf, pf, zero), H._Trace(hb, sb, pb, zero)
-    got, n_mism = H._combine(fw, bw, lag_px=0.0, mismatch_sigma=1.5)
+    fw, bw = Re._Trace(hf, sf, pf, zero), Re._Trace(hb, sb, pb, zero)
+    got, n_mism = Re._combine(fw, bw, lag_px=0.0, mismatch_sigma=1.5)
     sd = np.hypot(sf, sb)
     mism = np.abs(hf - hb) > 1.5 * sd
     assert 0 < n_mism == int(mism.sum()) < mism.size
