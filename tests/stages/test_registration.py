@@ -228,6 +228,30 @@ def test_far_rival_of_the_binned_pass_is_told_apart_at_full_resolution():
     assert np.allclose(r.shift_px, truth, atol=0.05)
 
 
+def test_a_match_one_lattice_site_off_is_never_confident():
+    # With few adsorbates in the window the atomic lattice left after the Fourier notch, and
+    # the frames' drift shear, can make a neighbouring lattice site match as well as the true
+    # shift or better: over these 16 simulated pairs (3-20 adsorbates, 4 seeds each) 9 come
+    # out 2.4-30 px off, 5 of them by one surface lattice vector (Au(111) nearest-neighbour
+    # distance a/sqrt(2) = 0.288 nm = 2.46 px at 30 nm / 256 px; a = 4.078 Å, from memory).
+    # The drift model must not use such a pair: every wrong shift has to come with a
+    # confidence below its default cut of 0.3. The right ones with 20 adsorbates are used.
+    # Truth: the simulator's drift times the frame interval.
+    from pipeline.config import DriftConfig
+
+    cut = DriftConfig().min_confidence
+    assert cut == 0.3
+    right_and_used = 0
+    for n_adsorbates in (3, 5, 10, 20):
+        for seed in range(4):
+            a, b, truth = simulated_pair(n_adsorbates, seed)
+            r = register_images(a, b, upsample_factor=20)
+            right = bool(np.hypot(*np.subtract(r.shift_px, truth)) < 0.1)
+            assert right or r.confidence < cut, (n_adsorbates, seed, r)
+            right_and_used += right and r.confidence >= cut
+    assert right_and_used >= 2
+
+
 @pytest.mark.parametrize(
     ("kwargs", "message"),
     [({"upsample_factor": 0}, "upsample_factor = 0"),
