@@ -129,6 +129,10 @@ class LevelConfig(_Section):
     robust: bool = Field(True, description="iteratively reweighted fit (adsorbates, steps)")
     line_offsets: bool = Field(True, description="remove per-line offsets by robust matching")
     line_slopes: bool = Field(False, description="also remove per-line slopes")
+    tip_jumps: Literal["remove", "keep"] = Field(
+        "remove", description="a persistent height jump between lines at a detected tip change "
+        "(the tip got longer or shorter): remove it from the height map, or keep it as a step "
+        "(the frame is flagged either way)")
     terraces: bool = Field(True, description="segment terraces; one common plane (the "
                            "polynomial when method = \"polynomial\") plus one offset per "
                            "terrace; report step heights")

@@ -242,7 +242,8 @@ def process_frame(
             stage = "level_lines"
             ds = level_lines(ds, slopes=lv.line_slopes,
                              step_threshold_sigma=lv.line_step_threshold_sigma,
-                             min_step_height_m=lv.min_step_height_m)
+                             min_step_height_m=lv.min_step_height_m,
+                             tip_jumps=lv.tip_jumps)
         if lv.terraces:
             # one common background plus one offset per terrace; a background subtracted
             # before it would be refitted (plane) or would eat into the staircase (polynomial)

@@ -53,6 +53,7 @@ def test_unknown_table_suggests_closest(tmp_path):
         ("[barrier]\nwork_function_eV = -1.0\n", r"'barrier\.work_function_eV' = -1\.0"),
         ("[run]\nexecutor = \"gpu\"\n", r"'run\.executor' = 'gpu'"),
         ("[level]\nrobust = \"maybe\"\n", r"'level\.robust' = 'maybe'"),
+        ("[level]\ntip_jumps = \"drop\"\n", r"'level\.tip_jumps' = 'drop'"),
         ("[run]\nworkers = 2.5\n", r"'run\.workers' = 2\.5"),
     ],
 )

@@ -558,3 +558,54 @@ def test_chain_on_simulated_constant_current_frame() -> None:
     scar_flag = (out["flags"].values & Flag.SCAR) > 0
     assert scar_flag[truth["scar_mask"].values > 0].mean() > 0.9
     assert not scar_flag[truth["scar_mask"].values == 0].any()
+
+
+@pytest.mark.parametrize("slow_direction", ["increasing", "decreasing"])
+def test_tip_change_jump_is_removed_and_the_steps_come_out_true(slow_direction: str) -> None:
+    # A tip that gets 140 pm longer halfway through the frame shifts every later line by the
+    # same amount. Kept, it is a fourth "terrace" and the unit step comes out wrong; removed,
+    # the staircase is whole again. Truth: the simulator's tip change and the Au(111)
+    # monatomic step a/sqrt(3) (a from ase's reference data).
+    from datetime import datetime
+
+    from pipeline.simulate import Adsorbate, Step, Surface, simulate_constant_current_frame
+    from pipeline.stages.quality import flag_tip_changes
+
+    rng = np.random.default_rng(11)
+    steps = tuple(Step(offset_m=o, angle_deg=70.0, levels=1) for o in (-20e-9, 10e-9))
+    ads = tuple(Adsorbate(float(px), float(py), 1.5e-10, 6e-10)
+                for px, py in rng.uniform(-45e-9, 45e-9, (12, 2)))
+    surf = Surface(lattice_constant_m=A_AU_M, steps=steps, corrugation_m=20e-12,
+                   corrugation_angle_deg=12.0, adsorbates=ads)
+    raw, _ = simulate_constant_current_frame(
+        surf, rng=rng, phi_eV=4.5, setpoint_A=1e-10, bias_V=0.5, nx=256, ny=256,
+        size_x_m=100e-9, line_time_s=0.1, start_time=datetime(2031, 5, 4, 22, 0, 0),
+        z_noise_m=3e-12, backward=False, tip_change_row=120, tip_change_m=1.4e-10,
+        slow_direction=slow_direction)
+    ds = make_height_frame(raw, raw["z"].values, uncertainty=np.full(raw["z"].shape, 3e-12))
+    ds = flag_tip_changes(ds)
+    assert ds.attrs["tip_change_rows"] == "[120]"
+    # the recorded jump between the lines above and below the change (spatial order)
+    z = raw["z"].values
+    recorded = float(np.median(z[121:131]) - np.median(z[109:119]))
+    removed = level_lines(ds)
+    a = removed.attrs
+    assert list(a["tip_jump_rows"]) in ([120], [121])
+    assert a["line_steps_kept"].size == 0
+    jump, sigma = float(a["tip_jumps_m"][0]), float(a["tip_jump_uncertainties_m"][0])
+    assert abs(abs(jump) - 1.4e-10) < 3 * sigma
+    assert np.sign(jump) == np.sign(recorded)
+    assert sigma < 0.1 * abs(jump)
+    assert any("tip change's height jump" in w for w in get_warnings(removed))
+    levelled = level_terraces(removed).attrs
+    assert levelled["step_height_m"] == pytest.approx(STEP_AU_M, rel=0.01)
+    assert levelled["n_terraces"] == 3
+    # kept, the jump splits terraces and the unit step is off by far more than 1 %
+    kept = level_lines(ds, tip_jumps="keep")
+    assert kept.attrs["tip_jump_rows"].size == 0 and kept.attrs["line_steps_kept"].size == 1
+    assert abs(level_terraces(kept).attrs["step_height_m"] / STEP_AU_M - 1) > 0.1
+
+
+def test_level_lines_refuses_an_unknown_tip_jump_mode(terraced: dict) -> None:
+    with pytest.raises(ProcessingError, match="tip_jumps = 'drop'"):
+        level_lines(terraced["ds"], tip_jumps="drop")
