@@ -229,3 +229,17 @@ def test_mixed_time_zones_fail_the_odd_frame_only(run_copy, serial_config, tmp_p
     msgs = [f.message for f in summary.failures]
     assert any("time zone, unlike the other frames" in m for m in msgs), msgs
     assert summary.n_frames == len(list((run_copy / "truth").glob("*.nc"))) - 1
+
+
+def test_only_whole_step_staircases_calibrate_the_z_scale():
+    from pipeline.batch.runlevel import calibration_steps
+
+    heads = [
+        {"step_height_m": 2.35e-10, "step_height_uncertainty_m": 1e-12,
+         "step_levels_consistent": 1},
+        {"step_height_m": 7.7e-11, "step_height_uncertainty_m": 1e-12,  # a missed tip change
+         "step_levels_consistent": 0},
+        {"frame_id": "flat"},  # one terrace: no step
+        {"step_height_m": 2.36e-10, "step_height_uncertainty_m": 2e-12},  # before the check
+    ]
+    assert calibration_steps(heads) == [(2.35e-10, 1e-12), (2.36e-10, 2e-12)]

@@ -39,6 +39,7 @@ from pipeline import tasks
 from pipeline._version import __version__
 from pipeline.batch.events import Event, RunSummary, run_pass
 from pipeline.batch.executors import make_executor
+from pipeline.batch.runlevel import calibration_steps
 from pipeline.batch.runlevel import drift_model as _drift
 from pipeline.batch.runlevel import lateral_scale as _lateral_scale
 from pipeline.batch.runlevel import work_function as _work_function
@@ -258,8 +259,7 @@ def _run(
     if config.calibrate.known_step_height_m:
         # from every frame of the run, recomputed or reused from an earlier run
         heads = [headers[f][0] for f in order]
-        steps = [(float(a["step_height_m"]), float(a.get("step_height_uncertainty_m", np.nan)))
-                 for a in heads if np.isfinite(float(a.get("step_height_m", np.nan)))]
+        steps = calibration_steps(heads)
         if steps:
             h, u = np.array(steps, dtype=float).T
             z_scale, z_unc = z_scale_from_steps(

@@ -38,7 +38,7 @@ from pipeline.stages.drift import (
     plan_frame_pairs,
 )
 
-__all__ = ["drift_model", "lateral_scale", "work_function"]
+__all__ = ["calibration_steps", "drift_model", "lateral_scale", "work_function"]
 
 
 def work_function(
@@ -107,6 +107,18 @@ def _two_setpoint(
             return est
     raise ConfigError("[barrier] source = 'two-setpoint' needs two successive constant-current "
                       "frames of the same area at different setpoints; the run has none")
+
+
+def calibration_steps(frame_attrs: list[dict[str, Any]]) -> list[tuple[float, float]]:
+    """The (step height, uncertainty) pairs of the frames that can calibrate the z scale.
+
+    Frames without a step height are left out, and so are staircases whose levels are not
+    whole multiples of one step (``step_levels_consistent = 0``): their unit step is not the
+    surface's.
+    """
+    return [(float(a["step_height_m"]), float(a.get("step_height_uncertainty_m", np.nan)))
+            for a in frame_attrs if np.isfinite(float(a.get("step_height_m", np.nan)))
+            and int(a.get("step_levels_consistent", 1)) == 1]
 
 
 def lateral_scale(

@@ -472,7 +472,7 @@ def _with_flags(ds: xr.Dataset, flags: np.ndarray) -> xr.Dataset:
     return out
 
 
-@stage(version="1")
+@stage(version="2")
 def assess_quality(
     ds: xr.Dataset,
     *,
@@ -509,8 +509,10 @@ def assess_quality(
     ``status`` is ``"flagged"`` when any of these holds, each with its own warning: some
     pixels were not recorded (DESIGN.md §3: a frame with missing data is always flagged),
     more than ``bad_pixel_fraction_limit`` of the pixels are unusable, a tip change was found,
-    more than ``trace_mismatch_fraction_limit`` of the pixels have mismatching traces, no
-    pixel is usable, or the height is the same everywhere. Otherwise ``"ok"`` (earlier
+    more than ``trace_mismatch_fraction_limit`` of the pixels have mismatching traces, the
+    terrace levels are not whole multiples of one step (``step_levels_consistent = 0`` from
+    :func:`pipeline.stages.level.level_terraces`), no pixel is usable, or the height is the
+    same everywhere. Otherwise ``"ok"`` (earlier
     warnings are kept, and may be informational). The areal parameters use every usable pixel
     (adsorbates left out of background fits included: they are topography).
     """
@@ -551,6 +553,10 @@ def assess_quality(
         if tip_rows:
             flags[tip_rows, :] |= np.uint8(Flag.TIP_CHANGE)
             reasons.append(f"tip change at line(s) {', '.join(map(str, tip_rows))}")
+        if ds.attrs.get("step_levels_consistent") == 0:
+            reasons.append("terrace height differences are not whole multiples of one step "
+                           "(a tip change that was not detected, or steps of different kinds): "
+                           "the step height is unreliable")
         params = areal_parameters(h)
         if params["Sq_m"] == 0:
             reasons.append("height is the same at every usable pixel (Sq = 0): no topography "

@@ -600,10 +600,15 @@ def test_tip_change_jump_is_removed_and_the_steps_come_out_true(slow_direction: 
     levelled = level_terraces(removed).attrs
     assert levelled["step_height_m"] == pytest.approx(STEP_AU_M, rel=0.01)
     assert levelled["n_terraces"] == 3
-    # kept, the jump splits terraces and the unit step is off by far more than 1 %
+    assert levelled["step_levels_consistent"] == 1
+    # kept, the jump splits terraces and the unit step is off by far more than 1 %; the
+    # staircase is then no whole multiple of one step, which the terrace stage says
     kept = level_lines(ds, tip_jumps="keep")
     assert kept.attrs["tip_jump_rows"].size == 0 and kept.attrs["line_steps_kept"].size == 1
-    assert abs(level_terraces(kept).attrs["step_height_m"] / STEP_AU_M - 1) > 0.1
+    stairs = level_terraces(kept)
+    assert abs(stairs.attrs["step_height_m"] / STEP_AU_M - 1) > 0.1
+    assert stairs.attrs["step_levels_consistent"] == 0
+    assert any("whole multiples" in w for w in get_warnings(stairs))
 
 
 def test_level_lines_refuses_an_unknown_tip_jump_mode(terraced: dict) -> None:

@@ -281,6 +281,18 @@ def test_trace_mismatch_limit() -> None:
     assert out.attrs["status"] == "ok"
 
 
+def test_staircase_that_is_not_whole_steps_flags_the_frame() -> None:
+    # level_terraces' verdict on its own staircase (a missed tip change leaves a false level)
+    ds = frame(surface())
+    assert assess_quality(ds).attrs["status"] == "ok"
+    ds.attrs["step_levels_consistent"] = 1
+    assert assess_quality(ds).attrs["status"] == "ok"
+    ds.attrs["step_levels_consistent"] = 0
+    out = assess_quality(ds)
+    assert out.attrs["status"] == "flagged"
+    assert any("not whole multiples of one step" in w for w in get_warnings(out))
+
+
 def test_all_nan_frame_is_flagged_without_crash() -> None:
     out = assess_quality(frame(np.full((N, N), np.nan)))
     assert out.attrs["status"] == "flagged"
