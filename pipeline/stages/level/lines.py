@@ -221,7 +221,9 @@ def level_lines(
     of a detected tip change is the tip's own length change (the quality stage tells it from a
     step parallel to the fast axis: it moves the whole line, across every step edge): it is
     removed from the lines after it, and its uncertainty is added to theirs; with
-    ``tip_jumps="keep"`` it is kept like a step. The slow profile of
+    ``tip_jumps="keep"`` it is kept like a step. (A real step edge within about 1° of the fast
+    axis across the whole frame cannot be told from a tip change in one frame and is removed
+    too; the warning names it.) The slow profile of
     the frame beyond the plane (bow, hills wider than the frame) is treated as line offsets,
     as in any line-matching method, and so is the linear trend of the offsets themselves
     (it cannot be told from a y tilt: sigma * sqrt(12 / n_lines) / size_y in rad). The
