@@ -166,6 +166,16 @@ def get_warnings(ds: xr.Dataset) -> list[str]:
     return [str(w) for w in np.atleast_1d(raw)]
 
 
+def get_tip_change_rows(ds: xr.Dataset) -> list[int] | None:
+    """Rows of the tip changes found by :func:`pipeline.stages.quality.flag_tip_changes` (the
+    first line recorded with the changed tip, JSON in ``tip_change_rows``); None if not looked
+    for yet."""
+    raw = ds.attrs.get("tip_change_rows")
+    if raw is None:
+        return None
+    return [int(r) for r in json.loads(str(raw))]
+
+
 def add_warning(ds: xr.Dataset, message: str) -> None:
     """Append a warning to ``ds`` in place (only on datasets a stage has just created)."""
     ws = get_warnings(ds)

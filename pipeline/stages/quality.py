@@ -20,6 +20,7 @@ from pipeline.model import (
     Flag,
     add_warning,
     flag_attrs,
+    get_tip_change_rows,
     get_warnings,
     replace_maps,
     stage,
@@ -546,10 +547,9 @@ def assess_quality(
 
     tip_rows: list[int] = []
     if np.isfinite(h).any():
-        if "tip_change_rows" in ds.attrs:  # found by flag_tip_changes before levelling
-            tip_rows = [int(r) for r in json.loads(str(ds.attrs["tip_change_rows"]))]
-        else:
-            tip_rows = detect_tip_changes(ds, threshold_sigma=tip_change_threshold_sigma)
+        recorded = get_tip_change_rows(ds)  # found by flag_tip_changes before levelling
+        tip_rows = recorded if recorded is not None else detect_tip_changes(
+            ds, threshold_sigma=tip_change_threshold_sigma)
         if tip_rows:
             flags[tip_rows, :] |= np.uint8(Flag.TIP_CHANGE)
             reasons.append(f"tip change at line(s) {', '.join(map(str, tip_rows))}")

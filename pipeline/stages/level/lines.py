@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import math
 from typing import Any, Literal
 
@@ -11,7 +10,7 @@ import xarray as xr
 from scipy import ndimage
 
 from pipeline.errors import ProcessingError
-from pipeline.model import add_warning, stage
+from pipeline.model import add_warning, get_tip_change_rows, stage
 from pipeline.stages.level.frame import (
     _add_variance,
     _bad_names,
@@ -383,10 +382,7 @@ def _at_tip_changes(ds: xr.Dataset, rows: np.ndarray, steps: np.ndarray) -> np.n
     (``tip_change_rows``, JSON); the jump lies between that line and the one recorded before it,
     above or below it depending on the slow direction.
     """
-    try:
-        tips = np.asarray(json.loads(str(ds.attrs.get("tip_change_rows", "[]"))), dtype=float)
-    except (ValueError, TypeError):
-        tips = np.zeros(0)
+    tips = np.asarray(get_tip_change_rows(ds) or [], dtype=float)
     if not (steps.size and tips.size):
         return np.zeros(steps.size, dtype=bool)
     middle = 0.5 * (rows[steps] + rows[steps + 1])  # the boundary, between two lines
