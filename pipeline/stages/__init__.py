@@ -35,13 +35,9 @@ from pipeline.stages.drift import (
 )
 from pipeline.stages.height import estimate_trace_lag, reconstruct_height
 from pipeline.stages.level import level_lines, level_terraces, repair_scars, subtract_background
-from pipeline.stages.quality import (
-    areal_parameters,
-    assess_quality,
-    detect_tip_changes,
-    flag_tip_changes,
-)
+from pipeline.stages.quality import areal_parameters, assess_quality, flag_tip_changes
 from pipeline.stages.registration import Registration, register_images
+from pipeline.stages.tip_changes import detect_tip_changes
 
 __all__ = [
     "BarrierModelFit",

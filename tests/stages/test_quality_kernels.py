@@ -1,4 +1,5 @@
-"""The fast numerical kernels of the quality stage against their reference definitions."""
+"""The fast numerical kernels of the quality stage and the tip-change detector against their
+reference definitions."""
 
 from __future__ import annotations
 
@@ -8,13 +9,14 @@ import numpy as np
 from scipy import stats
 
 from pipeline.stages import quality as Q
+from pipeline.stages import tip_changes as T
 
 
 def test_comparator_network_sorts_every_input() -> None:
     # 0-1 principle (Knuth, TAOCP vol. 3, §5.3.4): a comparator network that sorts every
     # 0/1 sequence sorts every sequence
     for n in range(1, 11):
-        net = Q._network(n)
+        net = T._network(n)
         for bits in itertools.product((0, 1), repeat=n):
             a = list(bits)
             for i, j in net:
@@ -30,9 +32,9 @@ def test_block_medians_equal_sliding_window_medians() -> None:
         for frac in (0.0, 0.1, 0.7, 1.0):
             a = h.copy()
             a[rng.random(shape) < frac] = np.nan
-            win = np.lib.stride_tricks.sliding_window_view(a, Q._BLOCK_LINES, axis=0)
-            ref = Q._nanmedian(win, axis=-1)  # the per-window sort it replaces
-            np.testing.assert_array_equal(Q._block_medians(a), ref)
+            win = np.lib.stride_tricks.sliding_window_view(a, T._BLOCK_LINES, axis=0)
+            ref = T._nanmedian(win, axis=-1)  # the per-window sort it replaces
+            np.testing.assert_array_equal(T._block_medians(a), ref)
 
 
 def test_skewness_and_kurtosis_equal_scipy_stats() -> None:
