@@ -39,16 +39,28 @@ _MAD_TO_SIGMA = 1.482602218505602
 #: Largest relative closure error |g3 - g2 + g1| / |g| of a hexagonal peak set.
 _CLOSURE_TOL = 0.05
 
-#: Height-valued attributes (m) written by the levelling stages; :func:`scale_height` scales
-#: them with the map.
+#: Height-valued attributes (m) of a processed frame (height, levelling, quality stages);
+#: :func:`scale_height` scales them with the map.
 _HEIGHT_ATTRS = (
     "step_height_m", "plane_only_step_height_m", "terrace_offsets_m", "line_offsets_m",
     "line_step_heights_m", "line_offset_rms_m", "background_coefficients_m",
     "terrace_fit_coefficients_m", "background_residual_rms_m", "scar_threshold_m",
+    "tip_jumps_m", "height_noise_m", "mean_height_before_levelling_m",
+    "Sa_m", "Sq_m", "Sp_m", "Sv_m", "Sz_m",
 )
+#: Height-valued attributes with their standard uncertainty attribute (same shape).
+_HEIGHT_UNCERTAINTIES = (("step_height_m", "step_height_uncertainty_m"),
+                         ("tip_jumps_m", "tip_jump_uncertainties_m"))
 #: Tilt attributes (rad, atan of a slope along x or y) written by the levelling stages.
 _TILT_X = ("tilt_x_rad", "background_tilt_x_rad", "plane_only_tilt_x_rad")
 _TILT_Y = ("tilt_y_rad", "background_tilt_y_rad", "plane_only_tilt_y_rad")
+#: Slopes along x (height per length, one per line) written by line levelling.
+_SLOPES_X = ("line_slopes",)
+#: Lateral lengths (m) and velocities (m/s) along x and y; :func:`scale_lateral` scales them.
+_LATERAL_X = ("scan_size_x_m", "scan_center_x_m", "drift_displacement_x_m", "drift_shift_x_m",
+              "drift_velocity_x_m_per_s")
+_LATERAL_Y = ("scan_size_y_m", "scan_center_y_m", "drift_displacement_y_m", "drift_shift_y_m",
+              "drift_velocity_y_m_per_s")
 
 
 def _name(ds: xr.Dataset) -> str:
@@ -150,16 +162,25 @@ def z_scale_from_steps(
     return scale, scale * u_mean / mean
 
 
+def _like(old: Any, new: np.ndarray) -> Any:
+    """``new`` as a float when ``old`` was a scalar, else as an array."""
+    return float(new) if np.ndim(old) == 0 else new
+
+
 def _rescale_tilts(attrs: dict[str, Any], fx: float, fy: float) -> None:
+    """Tilts and slopes after multiplying every slope along x by ``fx``, along y by ``fy``."""
     for keys, f in ((_TILT_X, fx), (_TILT_Y, fy)):
         for k in keys:
             if k in attrs:
                 attrs[k] = math.atan(f * math.tan(float(attrs[k])))
+    for k in _SLOPES_X:
+        if k in attrs:
+            attrs[k] = _like(attrs[k], np.asarray(attrs[k], dtype=np.float64) * fx)
     if "residual_tilt_rad" in attrs:
         attrs["residual_tilt_rad"] = float(attrs["residual_tilt_rad"]) * max(abs(fx), abs(fy))
 
 
-@stage(version="1")
+@stage(version="2")
 def scale_height(ds: xr.Dataset, *, factor: float,
                  factor_uncertainty: float = 0.0) -> xr.Dataset:
     """Multiply a frame's heights (and its height-valued attributes) by a z scale factor.
@@ -178,10 +199,12 @@ def scale_height(ds: xr.Dataset, *, factor: float,
     xarray.Dataset
         New frame: ``height`` times ``factor``; ``height_uncertainty`` = sqrt((f u)^2 +
         (h u_f)^2) with h measured from the frame's own zero (after
-        :func:`~pipeline.stages.level.level_terraces`, the lowest terrace); the step heights,
-        terrace offsets and other height attributes of the levelling stages scaled likewise
-        (``step_height_uncertainty_m`` gets the same propagation), the tilts as atan(f tan t);
-        attrs ``z_scale_factor`` and ``z_scale_factor_uncertainty`` (cumulative when scaled
+        :func:`~pipeline.stages.level.level_terraces`, the lowest terrace); every
+        height-valued attribute scaled likewise (:data:`_HEIGHT_ATTRS`: step heights, terrace
+        offsets, line offsets, tip-change jumps, the noise, the ISO 25178-2 heights ``Sq_m``
+        and the others), ``step_height_uncertainty_m`` and ``tip_jump_uncertainties_m`` with
+        the same propagation, the tilts as atan(f tan t) and the line slopes times f; attrs
+        ``z_scale_factor`` and ``z_scale_factor_uncertainty`` (cumulative when scaled
         twice).
 
     Raises
@@ -206,13 +229,13 @@ def scale_height(ds: xr.Dataset, *, factor: float,
         out["height_uncertainty"] = (ds["height_uncertainty"].dims,
                                      np.sqrt((f * u) ** 2 + (hz * uf) ** 2).astype(np.float32),
                                      dict(ds["height_uncertainty"].attrs))
-    if "step_height_uncertainty_m" in attrs and "step_height_m" in attrs:
-        s, us = float(attrs["step_height_m"]), float(attrs["step_height_uncertainty_m"])
-        attrs["step_height_uncertainty_m"] = math.hypot(f * us, s * uf)
+    for k, ku in _HEIGHT_UNCERTAINTIES:  # GUM first order, from the unscaled values
+        if k in attrs and ku in attrs:
+            v, uv = (np.asarray(attrs[key], dtype=np.float64) for key in (k, ku))
+            attrs[ku] = _like(attrs[ku], np.hypot(f * uv, v * uf))
     for k in _HEIGHT_ATTRS:
         if k in attrs:
-            val = np.asarray(attrs[k], dtype=np.float64) * f
-            attrs[k] = float(val) if val.ndim == 0 else val
+            attrs[k] = _like(attrs[k], np.asarray(attrs[k], dtype=np.float64) * f)
     _rescale_tilts(attrs, f, f)
     f0 = float(attrs.get("z_scale_factor", 1.0))
     u0 = float(attrs.get("z_scale_factor_uncertainty", 0.0))
@@ -503,7 +526,7 @@ def measure_lattice(
     )
 
 
-@stage(version="1")
+@stage(version="2")
 def scale_lateral(ds: xr.Dataset, *, scale_x: float, scale_y: float) -> xr.Dataset:
     """Rescale a frame's coordinates and scan size by lateral scale factors.
 
@@ -518,8 +541,10 @@ def scale_lateral(ds: xr.Dataset, *, scale_x: float, scale_y: float) -> xr.Datas
     -------
     xarray.Dataset
         New frame with ``x``, ``y``, ``scan_size_*_m`` and ``scan_center_*_m`` multiplied by the
-        factors (so the pixel-centre formula of the raw contract still holds), the tilt
-        attributes of the levelling stages adjusted to the new slopes, and cumulative attrs
+        factors (so the pixel-centre formula of the raw contract still holds), likewise the
+        frame's drift displacement, shift and velocity (:data:`_LATERAL_X`,
+        :data:`_LATERAL_Y`), the tilt attributes of the levelling stages and the line slopes
+        adjusted to the new slopes, and cumulative attrs
         ``lateral_scale_x``, ``lateral_scale_y``. Skew is not resampled here (it would need an
         interpolation of the map); it is reported by :func:`measure_lattice`.
 
@@ -536,10 +561,10 @@ def scale_lateral(ds: xr.Dataset, *, scale_x: float, scale_y: float) -> xr.Datas
         if c in ds.coords:
             out = out.assign_coords({c: (c, np.asarray(ds[c].values) * s, dict(ds[c].attrs))})
     attrs = dict(ds.attrs)
-    for key, s in (("scan_size_x_m", sx), ("scan_center_x_m", sx), ("scan_size_y_m", sy),
-                   ("scan_center_y_m", sy)):
-        if key in attrs:
-            attrs[key] = float(attrs[key]) * s
+    for keys, s in ((_LATERAL_X, sx), (_LATERAL_Y, sy)):
+        for key in keys:
+            if key in attrs:
+                attrs[key] = float(attrs[key]) * s
     _rescale_tilts(attrs, 1.0 / sx, 1.0 / sy)
     attrs["lateral_scale_x"] = float(attrs.get("lateral_scale_x", 1.0)) * sx
     attrs["lateral_scale_y"] = float(attrs.get("lateral_scale_y", 1.0)) * sy

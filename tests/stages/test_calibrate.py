@@ -108,7 +108,9 @@ def test_scale_height_propagates_uncertainty() -> None:
     ds = frame(1e-10 + 1e-2 * x, 10e-9)
     ds.attrs.update({"step_height_m": 2.2e-10, "step_height_uncertainty_m": 1e-12,
                      "terrace_offsets_m": np.array([0.0, 2.2e-10]), "tilt_x_rad": 0.01,
-                     "scan_size_x_m": 10e-9})
+                     "scan_size_x_m": 10e-9, "tip_jumps_m": np.array([1e-10]),
+                     "tip_jump_uncertainties_m": np.array([5e-12]),
+                     "line_slopes": np.array([1e-3, -2e-3])})
     before = ds.copy(deep=True)
     out = scale_height(ds, factor=1.05, factor_uncertainty=0.01)
     xr.testing.assert_identical(ds, before)
@@ -123,6 +125,11 @@ def test_scale_height_propagates_uncertainty() -> None:
     np.testing.assert_allclose(a["terrace_offsets_m"], [0.0, 1.05 * 2.2e-10])
     assert a["tilt_x_rad"] == pytest.approx(math.atan(1.05 * math.tan(0.01)))
     assert a["scan_size_x_m"] == 10e-9  # lateral sizes are not heights
+    np.testing.assert_allclose(a["tip_jumps_m"], [1.05e-10])
+    np.testing.assert_allclose(a["tip_jump_uncertainties_m"], [math.hypot(1.05 * 5e-12, 1e-12)])
+    np.testing.assert_allclose(a["line_slopes"], [1.05e-3, -2.1e-3])  # height per length
+    np.testing.assert_allclose(scale_lateral(ds, scale_x=1.25, scale_y=1.0).attrs["line_slopes"],
+                               [0.8e-3, -1.6e-3])
     assert a["z_scale_factor"] == pytest.approx(1.05)
     again = scale_height(out, factor=2.0)
     assert again.attrs["z_scale_factor"] == pytest.approx(2.1)
@@ -132,6 +139,37 @@ def test_scale_height_propagates_uncertainty() -> None:
         scale_height(ds, factor=0)
     with pytest.raises(ProcessingError, match="factor_uncertainty = -1 must be >= 0"):
         scale_height(ds, factor=1.0, factor_uncertainty=-1)
+
+
+def test_every_length_of_a_finished_frame_follows_its_calibration(sample_calibrated) -> None:
+    # A scale factor multiplies every length along its axis (its definition): heights and
+    # height-valued results by the z factor, lateral lengths and velocities by the lateral
+    # factor of their axis, slopes along x by z / x. Every length-valued attribute of the
+    # finished sample frames (tip change, drift, both calibrations) must be one of these, so a
+    # new attribute cannot be forgotten.
+    from pipeline.io.store import open_store
+    from pipeline.stages import calibrate as C
+
+    store, _, _ = sample_calibrated
+    st = open_store(store)
+    z_set = set(C._HEIGHT_ATTRS) | {u for _, u in C._HEIGHT_UNCERTAINTIES}
+    seen: set[str] = set()
+    for fid in st.frame_ids:
+        ds = st.frame(fid)
+        lengths = {k for k, v in ds.attrs.items() if k.endswith(("_m", "_m_per_s"))
+                   and np.asarray(v).dtype.kind == "f"}
+        assert lengths <= z_set | set(C._LATERAL_X) | set(C._LATERAL_Y), fid
+        seen |= lengths
+        z = scale_height(ds, factor=1.1)
+        lat = scale_lateral(ds, scale_x=1.2, scale_y=0.8)
+        for k in lengths:
+            v = np.asarray(ds.attrs[k], dtype=float)
+            fz = 1.1 if k in z_set else 1.0
+            fl = 1.2 if k in C._LATERAL_X else 0.8 if k in C._LATERAL_Y else 1.0
+            np.testing.assert_allclose(z.attrs[k], fz * v, rtol=1e-12, err_msg=k)
+            np.testing.assert_allclose(lat.attrs[k], fl * v, rtol=1e-12, err_msg=k)
+    # the attributes this guards were all present
+    assert {"Sq_m", "tip_jumps_m", "height_noise_m", "drift_displacement_x_m"} <= seen
 
 
 def test_z_calibration_from_known_step_end_to_end() -> None:
