@@ -211,6 +211,11 @@ class QualityConfig(_Section):
     trace_mismatch_fraction_limit: float = Field(
         0.02, ge=0, le=1, description="a frame whose forward and backward traces disagree on a "
         "larger fraction of pixels is flagged")
+    step_disagreement_sigma: float = Field(
+        5.0, gt=0, le=1000, description="a frame whose unit step lies further than this many "
+        "standard deviations (its own and the run's scatter) and more than 2 % from the step "
+        "the run's frames agree on (3 or more frames with steps) is flagged and left out of "
+        "the z calibration")
 
 
 class Config(_Section):

@@ -50,7 +50,7 @@ from pipeline.stages.drift import (
 )
 from pipeline.stages.height import reconstruct_height
 from pipeline.stages.level import level_lines, level_terraces, repair_scars, subtract_background
-from pipeline.stages.quality import assess_quality, flag_tip_changes
+from pipeline.stages.quality import assess_quality, compare_step_with_run, flag_tip_changes
 
 __all__ = [
     "FrameSummary",
@@ -348,9 +348,10 @@ def lattice_of_frame(staged: str, config: Config) -> LatticeCalibration | None:
 def finalize_frame(
     staged: str, store: str, config: Config, drift_model: DriftModel | None, run_t0: str,
     z_scale: float, z_scale_uncertainty: float, extra_attrs: dict[str, Any],
-    stage_result: bool = True,
+    stage_result: bool = True, run_step: tuple[float, float] | None = None,
 ) -> FrameSummary:
-    """Run-level corrections of one staged frame: drift inside it, then the z scale.
+    """Run-level corrections of one staged frame: drift inside it, the comparison of its unit
+    step with the run's ``run_step`` (step and scatter, m; skipped when None), the z scale.
 
     The finished frame is staged under ``store`` (``final/``), or, with ``stage_result=False``,
     returned in the summary's ``dataset`` for the scheduler to write into the store at once.
@@ -366,6 +367,11 @@ def finalize_frame(
             t0 = (parse_time(ds.attrs["start_time"]) - parse_time(run_t0)).total_seconds()
             ds = correct_drift(ds, model=drift_model, frame_t0_s=t0,
                                order=d.interpolation_order, reference=d.correction_reference)
+        if run_step is not None:
+            stage = "compare_step_with_run"
+            ds = compare_step_with_run(
+                ds, run_step_m=run_step[0], run_scatter_m=run_step[1],
+                threshold_sigma=config.quality.step_disagreement_sigma)
         if z_scale != 1.0:
             stage = "scale_height"
             ds = scale_height(ds, factor=z_scale, factor_uncertainty=z_scale_uncertainty)

@@ -243,3 +243,59 @@ def test_only_whole_step_staircases_calibrate_the_z_scale():
         {"step_height_m": 2.36e-10, "step_height_uncertainty_m": 2e-12},  # before the check
     ]
     assert calibration_steps(heads) == [(2.35e-10, 1e-12), (2.36e-10, 2e-12)]
+
+
+def test_a_frame_whose_step_disagrees_with_the_run_is_flagged(tmp_path):
+    # Four frames of Au(111)-like terraces and one whose staircase is whole multiples of a
+    # third of that step (what an undetected 80 pm tip change beside 235 pm steps leaves):
+    # on its own it looks fine; against the run it is flagged and calibrates nothing. Truth:
+    # the simulator's steps, a/sqrt(3) for the lattice constant given (crystal geometry).
+    from datetime import datetime, timedelta
+
+    from pipeline.io.writers import write_raw_netcdf
+    from pipeline.simulate import Step, Surface, simulate_constant_current_frame
+
+    a_m = 4.078e-10
+    run = tmp_path / "run"
+    run.mkdir()
+    for k, lattice in enumerate((a_m, a_m, a_m / 3, a_m, a_m)):
+        rng = np.random.default_rng(20 + k)
+        steps = tuple(Step(offset_m=o, angle_deg=40.0 + 7 * k, levels=1) for o in (-8e-9, 6e-9))
+        surf = Surface(lattice_constant_m=lattice, steps=steps, corrugation_m=1e-11)
+        raw, _ = simulate_constant_current_frame(
+            surf, rng=rng, phi_eV=4.5, setpoint_A=1e-10, bias_V=0.5, nx=128, ny=128,
+            size_x_m=40e-9, line_time_s=0.05,
+            start_time=datetime(2031, 5, 4, 22, 0, 0) + timedelta(minutes=10 * k),
+            z_noise_m=2e-12, backward=False, frame_id=f"f{k}")
+        write_raw_netcdf(raw, run / f"f{k}.nc")
+    cfg = parse_config({"run": {"executor": "serial"}, "drift": {"enabled": False},
+                        "calibrate": {"known_step_height_m": a_m / 3**0.5}})
+    store = tmp_path / "run.h5"
+    summary = run_batch(run, store, cfg)
+    assert not summary.failures
+    st = open_store(store)
+    status = {fid: st.frame(fid).attrs["status"] for fid in st.frame_ids}
+    assert status == {"f0": "ok", "f1": "ok", "f2": "flagged", "f3": "ok", "f4": "ok"}
+    odd = st.frame("f2").attrs
+    assert odd["step_height_m"] == pytest.approx(a_m / 3**0.5 / 3, rel=0.02)
+    assert odd["step_run_deviation_sigma"] > 5
+    assert any("disagrees with the run's" in w for w in json.loads(odd["warnings"]))
+    run_attrs = xr.open_dataset(store, group="run", engine="h5netcdf").attrs
+    # the z scale comes from the four agreeing frames: the simulated piezo is exact
+    assert run_attrs["z_scale_factor"] == pytest.approx(1.0, abs=3 * max(
+        run_attrs["z_scale_factor_uncertainty"], 1e-3))
+    assert run_attrs["step_consensus_m"] == pytest.approx(a_m / 3**0.5, rel=0.01)
+
+
+def test_the_runs_step_needs_three_frames_and_drops_the_odd_one():
+    from pipeline.batch.runlevel import calibration_steps, run_step
+
+    good = [{"step_height_m": s, "step_height_uncertainty_m": 3e-13}
+            for s in (2.354e-10, 2.356e-10, 2.355e-10)]
+    odd = {"step_height_m": 7.85e-11, "step_height_uncertainty_m": 3e-13}
+    assert run_step(good[:2]) is None  # two frames cannot tell which one is wrong
+    consensus = run_step([*good, odd])
+    assert consensus[0] == 2.354e-10  # weighted median of four equal weights: the lower middle
+    assert calibration_steps([*good, odd], consensus) == [
+        (a["step_height_m"], 3e-13) for a in good]
+    assert len(calibration_steps([*good, odd])) == 4  # without a consensus: all

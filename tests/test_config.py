@@ -54,6 +54,8 @@ def test_unknown_table_suggests_closest(tmp_path):
         ("[run]\nexecutor = \"gpu\"\n", r"'run\.executor' = 'gpu'"),
         ("[level]\nrobust = \"maybe\"\n", r"'level\.robust' = 'maybe'"),
         ("[level]\ntip_jumps = \"drop\"\n", r"'level\.tip_jumps' = 'drop'"),
+        ("[quality]\nstep_disagreement_sigma = 0\n",
+         r"'quality\.step_disagreement_sigma' = 0: .*greater than"),
         ("[run]\nworkers = 2.5\n", r"'run\.workers' = 2\.5"),
     ],
 )

@@ -54,7 +54,8 @@ def store(tmp_path_factory) -> Path:
                             "drift_velocity_y_m_per_s": -5.0e-12,
                             "drift_velocity_uncertainty_x_m_per_s": 1.0e-12,
                             "drift_model": "constant", "drift_pairs_used": 3,
-                            "drift_pairs_rejected": 1,
+                            "drift_pairs_rejected": 1, "step_consensus_m": 2.3546e-10,
+                            "step_consensus_scatter_m": 7.5e-14,
                             "drift_warnings": json.dumps(["pair f001 → f002 <low> confidence"]),
                             "config_toml": '[run]\ntitle = "a <b>"\n'})
     failures = [Failure("/night/f009.nc", "read", f"f009.nc: broken {EVIL}"),
@@ -163,6 +164,7 @@ def test_values_in_display_units(report):
     # 1e-11 m/s = 0.6 nm/min, -5e-12 m/s = -0.3 nm/min, 1e-12 m/s = 0.06 nm/min (conversion)
     assert "x +0.60 ± 0.06, y −0.3 nm/min" in text
     assert "constant, 3 frame pair(s) used, 1 rejected" in text
+    assert "235.5 pm (frames scatter 0.1 pm)" in text  # the run's unit step, m -> pm
     assert "drift: pair f001 → f002 <low> confidence" in text  # escaped on the page
 
 

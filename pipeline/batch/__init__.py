@@ -39,7 +39,7 @@ from pipeline import tasks
 from pipeline._version import __version__
 from pipeline.batch.events import Event, RunSummary, run_pass
 from pipeline.batch.executors import make_executor
-from pipeline.batch.runlevel import calibration_steps
+from pipeline.batch.runlevel import calibration_steps, run_step
 from pipeline.batch.runlevel import drift_model as _drift
 from pipeline.batch.runlevel import lateral_scale as _lateral_scale
 from pipeline.batch.runlevel import work_function as _work_function
@@ -254,12 +254,13 @@ def _run(
     run_attrs.setdefault("drift_velocity_x_m_per_s", np.nan)
     run_attrs.setdefault("drift_velocity_y_m_per_s", np.nan)
 
-    # 5. finalise: z scale from known steps, drift inside frames
+    # 5. finalise: the run's unit step, z scale from known steps, drift inside frames
     z_scale, z_unc = 1.0, 0.0
+    # from every frame of the run, recomputed or reused from an earlier run
+    heads = [headers[f][0] for f in order]
+    consensus = run_step(heads)  # frames that disagree are flagged and calibrate nothing
     if config.calibrate.known_step_height_m:
-        # from every frame of the run, recomputed or reused from an earlier run
-        heads = [headers[f][0] for f in order]
-        steps = calibration_steps(heads)
+        steps = calibration_steps(heads, consensus, config.quality.step_disagreement_sigma)
         if steps:
             h, u = np.array(steps, dtype=float).T
             z_scale, z_unc = z_scale_from_steps(
@@ -267,11 +268,14 @@ def _run(
             run_attrs.update(z_scale_factor=z_scale, z_scale_factor_uncertainty=z_unc)
         else:
             emit(Event("warning", message="no steps measured: z scale not calibrated"))
+    if consensus is not None:  # in the calibrated units of the frames' steps
+        run_attrs.update(step_consensus_m=consensus[0] * z_scale,
+                         step_consensus_scatter_m=consensus[1] * z_scale)
     extra = {"work_function_eV": phi}
     with StoreBuilder(store, title=config.run.title, history=history or
                       f"isogap process ({datetime.now(UTC):%Y-%m-%d})") as builder:
         _finish(executor, builder, order, staged_paths, config, drift_model, run_t0,
-                (z_scale, z_unc), extra, run_attrs, summary, fail, emit)
+                (z_scale, z_unc), consensus, extra, run_attrs, summary, fail, emit)
         run_attrs.update(extra_run_attrs)
         emit(Event("pass", name="writing store", total=1))
         run_ds = xr.merge(run_tables, combine_attrs="drop") if run_tables else xr.Dataset()
@@ -284,7 +288,8 @@ def _run(
 def _finish(
     executor: Any, builder: StoreBuilder, order: list[str], staged_paths: dict[str, str],
     config: Config, drift_model: Any, run_t0: str, z_scale: tuple[float, float],
-    extra: dict[str, Any], run_attrs: dict[str, Any], summary: RunSummary,
+    run_step: tuple[float, float] | None, extra: dict[str, Any], run_attrs: dict[str, Any],
+    summary: RunSummary,
     fail: Callable[[Failure], None], emit: Callable[[Event], None],
 ) -> None:
     """Finishing pass (drift inside frames, z scale), then the lateral scale; every finished
@@ -297,7 +302,7 @@ def _finish(
     calibrate_lateral = bool(config.calibrate.lattice_constant_m)
     jobs = [(staged_paths[f], str(builder.path), config, drift_model
              if config.drift.correct_within_frames else None, run_t0, *z_scale, extra,
-             calibrate_lateral) for f in order]
+             calibrate_lateral, run_step) for f in order]
     for _, res in run_pass(executor, "finishing", tasks.finalize_frame, jobs, emit):
         if res.failure:
             fail(res.failure)

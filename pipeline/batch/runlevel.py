@@ -28,6 +28,7 @@ from pipeline.stages.barrier import (
     estimate_work_function,
     two_setpoint_work_function,
 )
+from pipeline.stages.calibrate import step_consensus, step_disagreement
 from pipeline.stages.drift import (
     DriftModel,
     drift_table,
@@ -38,7 +39,7 @@ from pipeline.stages.drift import (
     plan_frame_pairs,
 )
 
-__all__ = ["calibration_steps", "drift_model", "lateral_scale", "work_function"]
+__all__ = ["calibration_steps", "drift_model", "lateral_scale", "run_step", "work_function"]
 
 
 def work_function(
@@ -109,16 +110,38 @@ def _two_setpoint(
                       "frames of the same area at different setpoints; the run has none")
 
 
-def calibration_steps(frame_attrs: list[dict[str, Any]]) -> list[tuple[float, float]]:
+def calibration_steps(frame_attrs: list[dict[str, Any]],
+                      consensus: tuple[float, float] | None = None,
+                      threshold_sigma: float = 5.0) -> list[tuple[float, float]]:
     """The (step height, uncertainty) pairs of the frames that can calibrate the z scale.
 
     Frames without a step height are left out, and so are staircases whose levels are not
     whole multiples of one step (``step_levels_consistent = 0``): their unit step is not the
-    surface's.
+    surface's. With the run's ``consensus`` (:func:`run_step`), so are the frames whose step
+    disagrees with it (the rule of :func:`pipeline.stages.quality.compare_step_with_run`,
+    which flags them).
     """
-    return [(float(a["step_height_m"]), float(a.get("step_height_uncertainty_m", np.nan)))
-            for a in frame_attrs if np.isfinite(float(a.get("step_height_m", np.nan)))
-            and int(a.get("step_levels_consistent", 1)) == 1]
+    steps = [(float(a["step_height_m"]), float(a.get("step_height_uncertainty_m", np.nan)))
+             for a in frame_attrs if np.isfinite(float(a.get("step_height_m", np.nan)))
+             and int(a.get("step_levels_consistent", 1)) == 1]
+    if consensus is None:
+        return steps
+    return [(s, u) for s, u in steps
+            if not step_disagreement(s, u, *consensus, threshold_sigma)[0]]
+
+
+def run_step(frame_attrs: list[dict[str, Any]]) -> tuple[float, float] | None:
+    """The unit step the run's frames agree on and their scatter about it, m.
+
+    :func:`pipeline.stages.calibrate.step_consensus` of the frames that could calibrate the z
+    scale (:func:`calibration_steps`) with a positive uncertainty; None with fewer than 3 (two
+    frames that disagree cannot tell which one is wrong).
+    """
+    steps = [(s, u) for s, u in calibration_steps(frame_attrs) if np.isfinite(u) and u > 0]
+    if len(steps) < 3:
+        return None
+    h, u = np.array(steps, dtype=float).T
+    return step_consensus(h, u)
 
 
 def lateral_scale(

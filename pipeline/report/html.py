@@ -454,6 +454,11 @@ def _run_summary(run: xr.Dataset) -> list[tuple[str, str]]:
         items.append(("drift from up/down frame pairs", (
             f"x {vux * 6e10:+.3f}, y {vuy * 6e10:+.3f} nm/min "
             f"({a.get('drift_updown_pairs', '?')} pair(s))").replace("-", "−")))
+    step = as_number(a.get("step_consensus_m"))
+    if step is not None:  # a scatter, not an uncertainty: shown apart
+        scatter = as_number(a.get("step_consensus_scatter_m"))
+        spread = f" (frames scatter {scatter * 1e12:.1f} pm)" if scatter is not None else ""
+        items.append(("unit step the frames agree on", f"{step * 1e12:.1f} pm{spread}"))
     for key, label in (("z_scale_factor", "z scale factor from known steps"),
                        ("lateral_scale_x", "x scale factor from the lattice"),
                        ("lateral_scale_y", "y scale factor from the lattice")):

@@ -32,6 +32,8 @@ __all__ = [
     "measure_lattice",
     "scale_height",
     "scale_lateral",
+    "step_consensus",
+    "step_disagreement",
     "z_scale_from_steps",
 ]
 
@@ -80,6 +82,57 @@ def _positive(value: float, what: str, where: str) -> float:
 # --------------------------------------------------------------------------------------------
 # z scale
 # --------------------------------------------------------------------------------------------
+
+
+def step_consensus(step_heights_m: ArrayLike, uncertainties_m: ArrayLike) -> tuple[float, float]:
+    """The unit step a run's frames agree on, and how much they scatter about it.
+
+    Parameters
+    ----------
+    step_heights_m, uncertainties_m : array_like
+        Finite unit step heights of the frames (m) and their positive standard uncertainties.
+
+    Returns
+    -------
+    step_m, scatter_m : float
+        Weighted median (weights 1/u², the lower one at an exact half) and the robust scatter
+        of the heights about it (1.4826 × median absolute deviation [1]_), m.
+
+    References
+    ----------
+    .. [1] P. J. Rousseeuw and C. Croux, J. Am. Stat. Assoc. 88, 1273 (1993).
+       DOI 10.1080/01621459.1993.10476408
+    """
+    h = np.asarray(step_heights_m, dtype=np.float64).ravel()
+    u = np.asarray(uncertainties_m, dtype=np.float64).ravel()
+    if h.size == 0 or h.shape != u.shape:
+        raise ProcessingError(f"step consensus: {h.size} step heights and {u.size} "
+                              "uncertainties (need the same number, at least one)")
+    order = np.argsort(h)
+    cw = np.cumsum(1 / u[order] ** 2)
+    wmed = float(h[order][np.searchsorted(cw, 0.5 * cw[-1])])
+    return wmed, _MAD_TO_SIGMA * float(np.median(np.abs(h - wmed)))
+
+
+#: A frame's unit step off the run's by more than this fraction (as well as beyond its
+#: uncertainty) disagrees: 2 %, the tolerance of a staircase's whole multiples.
+STEP_RUN_TOLERANCE = 0.02
+
+
+def step_disagreement(step_m: float, uncertainty_m: float, run_step_m: float,
+                      run_scatter_m: float, threshold_sigma: float) -> tuple[bool, float]:
+    """Whether one frame's unit step disagrees with the run's, and by how many σ.
+
+    The σ is that of the difference with the frame's own uncertainty and the run's scatter
+    combined, ``|s − m| / sqrt(u² + S²)`` (inf when both are 0). The frame disagrees when it
+    exceeds ``threshold_sigma`` and the step is also more than :data:`STEP_RUN_TOLERANCE` off
+    (``|s/m − 1|``): a deviation far beyond the noise but below 2 % is a calibration detail,
+    not a wrong step.
+    """
+    diff = abs(step_m - run_step_m)
+    sd = math.hypot(uncertainty_m, run_scatter_m)
+    sigma = diff / sd if sd > 0 else (math.inf if diff else 0.0)
+    return bool(sigma > threshold_sigma and diff > STEP_RUN_TOLERANCE * run_step_m), sigma
 
 
 def z_scale_from_steps(
@@ -145,10 +198,7 @@ def z_scale_from_steps(
     use &= h > 0
     h, u = h[use], u[use]
     if outlier_threshold_sigma is not None and h.size >= 3:
-        order = np.argsort(h)
-        cw = np.cumsum(1 / u[order] ** 2)
-        wmed = float(h[order][np.searchsorted(cw, 0.5 * cw[-1])])
-        spread = _MAD_TO_SIGMA * float(np.median(np.abs(h - wmed)))
+        wmed, spread = step_consensus(h, u)
         keep = np.abs(h - wmed) <= outlier_threshold_sigma * np.sqrt(u**2 + spread**2)
         h, u = h[keep], u[keep]
     w = 1.0 / u**2

@@ -24,9 +24,10 @@ from pipeline.model import (
     replace_maps,
     stage,
 )
+from pipeline.stages.calibrate import step_disagreement
 from pipeline.stages.tip_changes import detect_tip_changes, valid_height
 
-__all__ = ["areal_parameters", "assess_quality", "flag_tip_changes"]
+__all__ = ["areal_parameters", "assess_quality", "compare_step_with_run", "flag_tip_changes"]
 
 # --------------------------------------------------------------------------------------------
 # areal parameters
@@ -244,3 +245,64 @@ def assess_quality(
         add_warning(out, msg)
     out.attrs["status"] = "flagged" if reasons else "ok"
     return out
+
+
+@stage(version="1")
+def compare_step_with_run(ds: xr.Dataset, *, run_step_m: float, run_scatter_m: float,
+                          threshold_sigma: float = 5.0) -> xr.Dataset:
+    """Flag a frame whose unit step disagrees with the one the run's frames agree on.
+
+    Parameters
+    ----------
+    ds : xarray.Dataset
+        Levelled frame (``step_height_m``, ``step_height_uncertainty_m`` from
+        :func:`pipeline.stages.level.level_terraces`; a frame without them is returned
+        unchanged but for the attribute below).
+    run_step_m, run_scatter_m : float
+        The run's unit step and the scatter of its frames about it
+        (:func:`pipeline.stages.calibrate.step_consensus`), m.
+    threshold_sigma : float
+        The frame disagrees when its step is further than this many standard deviations (its
+        own uncertainty and the run's scatter combined) and more than
+        :data:`pipeline.stages.calibrate.STEP_RUN_TOLERANCE` from the run's.
+
+    Returns
+    -------
+    xarray.Dataset
+        Copy with attr ``step_run_deviation_sigma`` (NaN without a step); a disagreeing frame
+        is ``"flagged"`` with a warning that gives both steps and their ratio.
+
+    Notes
+    -----
+    Within one frame a tip change too small to be detected can leave a staircase of whole
+    multiples of the wrong unit (an 80 pm jump beside 235 pm steps: three "steps" each), and
+    a frame showing only double steps reports twice the unit; only the other frames of the run
+    tell. A staircase already found inconsistent (``step_levels_consistent = 0``) keeps its
+    own flag and is not compared.
+    """
+    frame = str(ds.attrs.get("frame_id", "<frame>"))
+    if not (math.isfinite(threshold_sigma) and threshold_sigma > 0):
+        raise ProcessingError(f"frame {frame}: compare_step_with_run threshold_sigma = "
+                              f"{threshold_sigma!r} must be > 0")
+    if not (math.isfinite(run_step_m) and run_step_m > 0 and math.isfinite(run_scatter_m)
+            and run_scatter_m >= 0):
+        raise ProcessingError(f"frame {frame}: compare_step_with_run needs a positive run step "
+                              f"and a scatter >= 0 (got {run_step_m!r}, {run_scatter_m!r})")
+    out = ds.copy()
+    step = float(ds.attrs.get("step_height_m", math.nan))
+    unc = float(ds.attrs.get("step_height_uncertainty_m", math.nan))
+    if not (math.isfinite(step) and math.isfinite(unc)) or \
+            ds.attrs.get("step_levels_consistent") == 0:
+        out.attrs["step_run_deviation_sigma"] = math.nan
+        return out
+    disagrees, sigma = step_disagreement(step, unc, run_step_m, run_scatter_m, threshold_sigma)
+    out.attrs["step_run_deviation_sigma"] = sigma
+    if disagrees:
+        add_warning(out, f"unit step {step * 1e12:.1f} ± {unc * 1e12:.1f} pm disagrees with the "
+                    f"run's {run_step_m * 1e12:.1f} pm (scatter {run_scatter_m * 1e12:.1f} pm; "
+                    f"{sigma:.0f} σ, ratio {step / run_step_m:.3f}): a tip change too small to "
+                    "be found, steps of another kind, or a bad terrace fit; left out of the z "
+                    "calibration")
+        out.attrs["status"] = "flagged"
+    return out
+

@@ -248,3 +248,22 @@ def test_not_atomically_resolved_is_an_error() -> None:
         measure_lattice(frame(terraces, 100e-9), lattice_constant_m=NN_AU_M)
     with pytest.raises(ProcessingError, match="lattice_constant_m = 0 must be a positive"):
         measure_lattice(frame(terraces, 10e-9), lattice_constant_m=0)
+
+
+def test_step_consensus_is_the_weighted_median_and_mad() -> None:
+    from scipy import stats
+
+    from pipeline.stages.calibrate import step_consensus, step_disagreement
+
+    h = np.array([235.1, 235.6, 78.4, 235.3, 236.0]) * 1e-12
+    # equal weights: the plain median and normal-scaled MAD (scipy.stats reference)
+    m, s = step_consensus(h, np.full(5, 1e-12))
+    assert m == np.median(h)
+    assert s == pytest.approx(stats.median_abs_deviation(h, scale="normal"), rel=1e-9)
+    # a precise frame pulls the weighted median to it: weights 1, 1, 1, 1, 100 (hand count)
+    m, _ = step_consensus(h, np.array([1, 1, 1, 1, 0.1]) * 1e-12)
+    assert m == 236.0e-12
+    assert step_disagreement(78.4e-12, 0.3e-12, 235.3e-12, 0.3e-12, 5.0)[0]
+    assert not step_disagreement(235.6e-12, 0.3e-12, 235.3e-12, 0.3e-12, 5.0)[0]
+    with pytest.raises(ProcessingError, match="2 step heights and 1 uncertainties"):
+        step_consensus([1e-10, 2e-10], [1e-12])

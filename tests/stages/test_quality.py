@@ -406,3 +406,56 @@ def test_bad_limits_are_refused() -> None:
     ds = frame(surface()).drop_vars("height")
     with pytest.raises(ProcessingError, match="no 'height' variable"):
         assess_quality(ds)
+
+
+# --------------------------------------------------------------------------------------------
+# the frame's step against the run's
+# --------------------------------------------------------------------------------------------
+
+
+def stepped(step_m: float, unc_m: float, **attrs) -> xr.Dataset:
+    ds = frame(surface())
+    ds.attrs.update(step_height_m=step_m, step_height_uncertainty_m=unc_m, status="ok", **attrs)
+    return ds
+
+
+def test_a_step_a_third_of_the_runs_is_flagged() -> None:
+    from pipeline.stages.quality import compare_step_with_run
+
+    # 78.5 pm in a run agreeing on the Au(111) step 235.5 pm (a/sqrt(3), a = 4.078 Å from
+    # memory): (235.5 - 78.5) / hypot(0.3, 0.2) = 435 σ, ratio 1/3
+    out = compare_step_with_run(stepped(78.5e-12, 0.3e-12), run_step_m=235.5e-12,
+                                run_scatter_m=0.2e-12)
+    assert out.attrs["status"] == "flagged"
+    assert out.attrs["step_run_deviation_sigma"] == pytest.approx(157 / math.hypot(0.3, 0.2))
+    (msg,) = get_warnings(out)
+    assert "78.5 ± 0.3 pm disagrees with the run's 235.5 pm" in msg and "ratio 0.333" in msg
+    assert get_history(out)[-1]["stage"] == "compare_step_with_run"
+
+
+@pytest.mark.parametrize(("step_pm", "unc_pm", "why"), [
+    (236.0, 0.3, "within 5 σ: 0.5 / hypot(0.3, 0.2) = 1.4 σ"),
+    (240.0, 0.01, "19 σ but 1.9 % off: below the 2 % tolerance"),
+])
+def test_a_step_close_to_the_runs_stays_ok(step_pm: float, unc_pm: float, why: str) -> None:
+    from pipeline.stages.quality import compare_step_with_run
+
+    out = compare_step_with_run(stepped(step_pm * 1e-12, unc_pm * 1e-12), run_step_m=235.5e-12,
+                                run_scatter_m=0.2e-12)
+    assert out.attrs["status"] == "ok", why
+    assert get_warnings(out) == []
+
+
+def test_frames_without_a_usable_step_are_not_compared() -> None:
+    from pipeline.stages.quality import compare_step_with_run
+
+    for ds in (frame(surface()), stepped(78.5e-12, 0.3e-12, step_levels_consistent=0)):
+        ds.attrs["status"] = "ok"
+        out = compare_step_with_run(ds, run_step_m=235.5e-12, run_scatter_m=0.2e-12)
+        assert math.isnan(out.attrs["step_run_deviation_sigma"])
+        assert out.attrs["status"] == "ok"
+    with pytest.raises(ProcessingError, match="threshold_sigma = 0 must be > 0"):
+        compare_step_with_run(frame(surface()), run_step_m=2e-10, run_scatter_m=0.0,
+                              threshold_sigma=0)
+    with pytest.raises(ProcessingError, match="needs a positive run step"):
+        compare_step_with_run(frame(surface()), run_step_m=-2e-10, run_scatter_m=0.0)
