@@ -167,7 +167,8 @@ def _changepoint(level: np.ndarray, lo: int, hi: int,
 
 def _changes(seg_change: np.ndarray, seg_pair: np.ndarray, offset: int, threshold_sigma: float,
              min_spread: float, max_transition_spread: float, block: int = _BLOCK_LINES,
-             seg_level: np.ndarray | None = None) -> list[tuple[int, int, float, float]]:
+             seg_level: np.ndarray | None = None, long_blocks: bool = False
+             ) -> list[tuple[int, int, float, float]]:
     """Boundaries where the whole line changed at once, far beyond the usual spread.
 
     ``seg_change[i, s]`` is the change of segment ``s`` from the block before boundary ``i`` to
@@ -177,13 +178,14 @@ def _changes(seg_change: np.ndarray, seg_pair: np.ndarray, offset: int, threshol
     of the change in units of the robust spread. ``block`` is the number of lines per block
     (the plateau of a change is looked for that far around the candidates).
 
-    ``seg_level[k, s]`` (rows × segments, the level of each line per segment) is given for long
-    blocks. The spread then leaves out the boundaries within a block of the largest change
-    (whose plateau would inflate it when blocks are long against the frame), and the moved
-    segments must agree on where each of them jumped, found by :func:`_changepoint` on its
-    levels: neither plateau test of the short blocks holds there (plateaus of long blocks are
-    wide and ragged, and over a long run of candidates the line pair where each segment jumped
-    most is that of the largest line offset, the same in every segment).
+    The moved segments must agree on where they changed: by the middle of each one's plateau
+    of block changes, or else by where each one jumped. With ``seg_level[k, s]`` (rows ×
+    segments, the level of each line per segment) that is :func:`_changepoint` on its levels;
+    without, the line pair of its largest change, which over a run of candidates longer than
+    a line or two may be that of the largest line offset, the same in every segment, so that
+    a shallow step edge would pass. With ``long_blocks`` the spread leaves out the boundaries
+    within a block of the largest change (whose plateau would inflate it when blocks are long
+    against the frame).
     """
     seg = seg_change - _nanmedian(seg_change, axis=0)[None, :]
     line = _nanmedian(seg, axis=1)
@@ -192,7 +194,7 @@ def _changes(seg_change: np.ndarray, seg_pair: np.ndarray, offset: int, threshol
         return []
     dev = np.where(finite, line - np.median(line[finite]), 0.0)
     quiet = finite.copy()
-    if seg_level is not None:  # one change moves 2 × block boundaries, not its own
+    if long_blocks:  # one change moves 2 × block boundaries, not its own
         peak = int(np.argmax(np.abs(dev)))
         quiet[max(peak - block, 0):peak + block + 1] = False
         if quiet.sum() < 3:
@@ -217,27 +219,26 @@ def _changes(seg_change: np.ndarray, seg_pair: np.ndarray, offset: int, threshol
         moved = like_line(seg[peak])
         if moved.sum() < _WHOLE_LINE_FRACTION * np.isfinite(seg[peak]).sum():
             continue
-        if seg_level is not None:
-            wlo = max(i + offset - block, 0)
-            whi = min(j - 1 + offset + block, seg_level.shape[0] - 1)
-            at = np.array([_changepoint(seg_level[:, k], wlo, whi)
-                           for k in np.flatnonzero(moved)])
-            if np.ptp(at) <= 1:
-                out.append((int(at.min()), int(at.max()), sign, strength))
-            continue
         # where each moved segment changed: the middle of its plateau of block changes, or
-        # the line pair where it jumped; either must agree between the segments
+        # where it jumped; either must agree between the segments
         lo, hi = max(i - block, 0), min(j + block, seg.shape[0])
         above = like_line(seg[lo:hi])[:, moved]
         idx = np.arange(lo, hi)[:, None]
         count = above.sum(axis=0)
         centre = ((above * idx).sum(axis=0) / np.maximum(count, 1))[count > 0] + offset
-        rlo, rhi = max(i + offset - 1, 0), min(j - 1 + offset + 1, seg_pair.shape[0] - 1)
-        pairs = sign * seg_pair[rlo:rhi + 1][:, moved]
-        jump = rlo + np.argmax(np.where(np.isfinite(pairs), pairs, -np.inf), axis=0)
         if centre.size and np.ptp(centre) <= max_transition_spread:
             out.append((int(np.floor(centre.min())), int(np.ceil(centre.max())), sign, strength))
-        elif jump.size and np.ptp(jump) <= 1:
+            continue
+        if seg_level is not None:
+            wlo = max(i + offset - block, 0)
+            whi = min(j - 1 + offset + block, seg_level.shape[0] - 1)
+            jump = np.array([_changepoint(seg_level[:, k], wlo, whi)
+                             for k in np.flatnonzero(moved)])
+        else:
+            rlo, rhi = max(i + offset - 1, 0), min(j - 1 + offset + 1, seg_pair.shape[0] - 1)
+            pairs = sign * seg_pair[rlo:rhi + 1][:, moved]
+            jump = rlo + np.argmax(np.where(np.isfinite(pairs), pairs, -np.inf), axis=0)
+        if jump.size and np.ptp(jump) <= 1:
             out.append((int(jump.min()), int(jump.max()), sign, strength))
     return out
 
@@ -260,14 +261,22 @@ def _first_new_line(step: np.ndarray, first: int, last: int, sign: float,
     return k if slow_direction == "decreasing" else k + 1
 
 
-def _long_height_changes(seg_pair: np.ndarray, pair: np.ndarray, threshold_sigma: float,
-                         slow_direction: str) -> list[tuple[float, int]]:
+def _levels(pair: np.ndarray) -> np.ndarray:
+    """Level of every line (rows, ...) from the line-to-line changes (rows − 1, ...): their
+    cumulative sum from 0 (a missing change counts as none). A line offset stays a one-line
+    excursion there, and a step edge crossing a segment moves only the few columns it crosses
+    at each line, not their median."""
+    steps = np.where(np.isfinite(pair), pair, 0.0)
+    return np.concatenate([np.zeros((1, *steps.shape[1:])), np.cumsum(steps, axis=0)])
+
+
+def _long_height_changes(seg_pair: np.ndarray, pair: np.ndarray, seg_lev: np.ndarray,
+                         threshold_sigma: float, slow_direction: str
+                         ) -> list[tuple[float, int]]:
     """Height jumps between the median line levels of ``_LONG_BLOCK_LINES`` lines.
 
-    ``seg_pair`` are the detrended line-to-line changes per segment and ``pair`` their median
-    over segments. Their cumulative sums are the levels of the lines (per segment, and of the
-    whole line): a line offset there stays a one-line excursion, and a step edge crossing a
-    segment moves only the few columns it crosses at each line, not the median. Returns
+    ``seg_pair`` are the detrended line-to-line changes per segment, ``pair`` their median
+    over segments and ``seg_lev`` the per-segment line levels (:func:`_levels`). Returns
     ``(strength, first new line)``; a rise and fall within one long block is a transient band
     (a burst of offsets, a bent tip that recovers), not a lasting change.
     """
@@ -275,16 +284,15 @@ def _long_height_changes(seg_pair: np.ndarray, pair: np.ndarray, threshold_sigma
     ny = pair.size + 1
     if ny < 2 * wl + 2:
         return []
-    seg_lev = np.vstack([np.zeros((1, seg_pair.shape[1])),
-                         np.cumsum(np.where(np.isfinite(seg_pair), seg_pair, 0.0), axis=0)])
-    level = np.concatenate([[0.0], np.cumsum(np.where(np.isfinite(pair), pair, 0.0))])
+    level = _levels(pair)
     ks = np.arange(wl - 1, ny - wl)  # boundary after row k: lines k-wl+1..k vs k+1..k+wl
     win = np.lib.stride_tricks.sliding_window_view(seg_lev, wl, axis=0)
     change = np.median(win[ks + 1], axis=-1) - np.median(win[ks - wl + 1], axis=-1)
     events = []
     for first, last, sign, strength in _changes(change, seg_pair, wl - 1, threshold_sigma,
                                                 _MIN_HEIGHT_SPREAD_M, _MAX_TRANSITION_SPREAD,
-                                                block=wl, seg_level=seg_lev):
+                                                block=wl, seg_level=seg_lev,
+                                                long_blocks=True):
         k = _changepoint(level, max(first - wl, 0), min(last + wl, ny - 1),
                          candidates=(first, last))
         events.append((strength, k if slow_direction == "decreasing" else k + 1, sign))
@@ -338,9 +346,12 @@ def detect_tip_changes(ds: xr.Dataset, *, threshold_sigma: float = 8.0) -> list[
     A change is a tip change only if (1) at least 60 % of the segments moved in the same
     direction by 0.5–1.5 times the line's change (a tip change shifts the whole line; a step
     edge crossing the frame moves only the segments it passes through, by its own height), (2)
-    those segments changed at the same line, within 1.5 lines (3 for the roughness, whose
-    block means change gradually; a mid-line change splits them over two lines, while a
-    shallow step crosses the segments at lines that drift along the fast axis), and (3) it
+    those segments changed at the same line, within 1.5 lines by the middle of their plateaus
+    of block changes (3 for the roughness, whose block means change gradually), or else
+    within one line by each segment's own best jump (:func:`_changepoint` on its line levels;
+    for the roughness, its largest line-to-line change) — a mid-line change splits them over
+    two lines, while a shallow step crosses the segments at lines that drift along the fast
+    axis — and (3) it
     persists (block medians of 8 lines outvote a glitch of one or two lines). The frame's tilt
     and a steady drift cancel (the median change over all boundaries is removed per segment).
     Changes within 8 lines of the first or last row cannot be tested for persistence and are
@@ -350,8 +361,8 @@ def detect_tip_changes(ds: xr.Dataset, *, threshold_sigma: float = 8.0) -> list[
     noise): a 5 pm whole-line jump, a threefold change of the atomic contrast. With 20 pm line
     offsets (simulated 256² frames with two step edges, adsorbates and drift, 30 per jump),
     jumps of 60 / 80 / 100 pm are found in 17 / 28 / 30 frames (8-line blocks alone: 0 / 10 /
-    19); none of 720 such frames without a tip change (step edges 2–80° from the fast axis,
-    line offsets 0–40 pm) reports one.
+    19); none of 960 such frames without a tip change (step edges 2–88° from the fast axis,
+    line offsets 0–40 pm) reports one (``benchmarks/sweep_tip_changes.py``).
 
     References
     ----------
@@ -376,12 +387,14 @@ def detect_tip_changes(ds: xr.Dataset, *, threshold_sigma: float = 8.0) -> list[
     seg_h = _segment_medians(diff, nx)
     seg_pair = _detrend(_segment_medians(h[1:] - h[:-1], nx))
     pair = _nanmedian(seg_pair, axis=1)
+    seg_lev = _levels(seg_pair)
     for first, last, sign, strength in _changes(seg_h, seg_pair, w - 1, threshold_sigma,
-                                                _MIN_HEIGHT_SPREAD_M, _MAX_TRANSITION_SPREAD):
+                                                _MIN_HEIGHT_SPREAD_M, _MAX_TRANSITION_SPREAD,
+                                                seg_level=seg_lev):
         found.append((strength, _first_new_line(pair, first, last, sign, slow)))
     # the same over long blocks of line levels, for jumps that line offsets hide from the
     # short blocks; a change the short blocks found is not counted twice
-    for strength, row in _long_height_changes(seg_pair, pair, threshold_sigma, slow):
+    for strength, row in _long_height_changes(seg_pair, pair, seg_lev, threshold_sigma, slow):
         if all(abs(row - r) >= _LONG_BLOCK_LINES for _, r in found):
             found.append((strength, row))
 

@@ -231,10 +231,12 @@ def test_small_tip_changes_under_line_offsets_are_found_on_long_blocks() -> None
 
 @pytest.mark.parametrize(("seed", "edge_deg", "offsets_m"),
                          [(1, 5.0, 20e-12), (2, 2.0, 20e-12), (3, 10.0, 40e-12),
-                          (4, 35.0, 40e-12), (5, 80.0, 20e-12)])
+                          (4, 35.0, 40e-12), (5, 80.0, 20e-12), (6, 2.0, 40e-12)])
 def test_line_offsets_and_shallow_steps_are_not_tip_changes(seed: int, edge_deg: float,
                                                              offsets_m: float) -> None:
-    # no tip change at all: line offsets, shallow and steep step edges, drift
+    # No tip change at all: line offsets, shallow and steep step edges, drift. The last case
+    # was reported (row 76) while the 8-line blocks placed segments by their largest line-pair
+    # change: with 40 pm offsets that is often the same line in every segment.
     ds = offset_frame(1000 + seed, normal_deg=90.0 + edge_deg, line_offsets_m=offsets_m)
     assert detect_tip_changes(ds) == []
 
