@@ -35,11 +35,7 @@ from pipeline.io.staging import (
 from pipeline.io.store import Failure
 from pipeline.model import BAD_PIXELS, parse_time
 from pipeline.stages.barrier import FIT_CURVES_CONFIG_KEYS, apparent_barrier_map, fit_curves
-from pipeline.stages.calibrate import (
-    LatticeCalibration,
-    measure_lattice,
-    scale_height,
-)
+from pipeline.stages.calibrate import scale_height
 from pipeline.stages.drift import (
     DriftModel,
     FrameShift,
@@ -49,6 +45,7 @@ from pipeline.stages.drift import (
     measure_frame_shift,
 )
 from pipeline.stages.height import reconstruct_height
+from pipeline.stages.lattice import LatticeCalibration, measure_lattice
 from pipeline.stages.level import level_lines, level_terraces, repair_scars, subtract_background
 from pipeline.stages.quality import assess_quality, compare_step_with_run, flag_tip_changes
 

@@ -16,13 +16,7 @@ from pipeline.stages.barrier import (
     fit_curves,
     two_setpoint_work_function,
 )
-from pipeline.stages.calibrate import (
-    LatticeCalibration,
-    measure_lattice,
-    scale_height,
-    scale_lateral,
-    z_scale_from_steps,
-)
+from pipeline.stages.calibrate import scale_height, scale_lateral, z_scale_from_steps
 from pipeline.stages.drift import (
     DriftModel,
     FrameShift,
@@ -34,6 +28,7 @@ from pipeline.stages.drift import (
     measure_frame_shift,
 )
 from pipeline.stages.height import estimate_trace_lag, reconstruct_height
+from pipeline.stages.lattice import LatticeCalibration, measure_lattice
 from pipeline.stages.level import level_lines, level_terraces, repair_scars, subtract_background
 from pipeline.stages.quality import areal_parameters, assess_quality, flag_tip_changes
 from pipeline.stages.registration import Registration, register_images

@@ -1,4 +1,4 @@
-"""Calibration against known synthetic answers (pipeline.stages.calibrate)."""
+"""Calibration against known synthetic answers (pipeline.stages.calibrate, .lattice)."""
 
 from __future__ import annotations
 
@@ -11,13 +11,8 @@ from ase.data import atomic_numbers, reference_states
 
 from pipeline.errors import ProcessingError
 from pipeline.model import get_history, make_height_frame, make_raw_frame
-from pipeline.stages.calibrate import (
-    LatticeCalibration,
-    measure_lattice,
-    scale_height,
-    scale_lateral,
-    z_scale_from_steps,
-)
+from pipeline.stages.calibrate import scale_height, scale_lateral, z_scale_from_steps
+from pipeline.stages.lattice import LatticeCalibration, measure_lattice
 from pipeline.stages.level import level_terraces
 
 # Cubic lattice constants from ase reference data; fcc(111) monatomic step a/sqrt(3) and
