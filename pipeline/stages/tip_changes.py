@@ -15,6 +15,7 @@ import xarray as xr
 
 from pipeline.errors import ProcessingError
 from pipeline.model import BAD_PIXELS
+from pipeline.stages.stats import changepoint, nanmedian
 from pipeline.stages.stats import median as _median
 
 __all__ = ["detect_tip_changes", "valid_height"]
@@ -50,17 +51,6 @@ _EDGE_GRADIENT_FACTOR = 8.0
 _MIN_LOG_ROUGHNESS_SPREAD = 0.01
 
 
-def _nanmedian(a: np.ndarray, axis: int = -1) -> np.ndarray:
-    """Median ignoring NaN, NaN for all-NaN slices, without numpy's RuntimeWarning."""
-    arr = np.moveaxis(np.asarray(a, dtype=np.float64), axis, -1)
-    srt = np.sort(arr, axis=-1)  # NaN sort last
-    n = np.sum(~np.isnan(arr), axis=-1)
-    lo = np.clip((n - 1) // 2, 0, None)[..., None]
-    hi = np.clip(n // 2, 0, None)[..., None]
-    med = 0.5 * (np.take_along_axis(srt, lo, -1) + np.take_along_axis(srt, hi, -1))[..., 0]
-    return np.where(n > 0, med, np.nan)
-
-
 def valid_height(ds: xr.Dataset) -> np.ndarray:
     """Height (float64) with NaN on non-finite and BAD_PIXELS-flagged pixels."""
     if "height" not in ds.data_vars:
@@ -81,7 +71,7 @@ def _segments(n: int) -> list[tuple[int, int]]:
 
 def _segment_medians(a: np.ndarray, n: int) -> np.ndarray:
     """Median over the columns of each fast-axis segment: shape (rows, segments)."""
-    return np.column_stack([_nanmedian(a[:, lo:hi], axis=1) for lo, hi in _segments(n)])
+    return np.column_stack([nanmedian(a[:, lo:hi], axis=1) for lo, hi in _segments(n)])
 
 
 def _network(n: int) -> list[tuple[int, int]]:
@@ -103,7 +93,7 @@ def _network(n: int) -> list[tuple[int, int]]:
 def _block_medians(a: np.ndarray) -> np.ndarray:
     """Median over each run of ``_BLOCK_LINES`` consecutive rows: shape (ny − W + 1, ...).
 
-    The same numbers as :func:`_nanmedian` over the sliding windows, computed with a sorting
+    The same numbers as :func:`nanmedian` over the sliding windows, computed with a sorting
     network on whole shifted copies of the map (elementwise min/max, no per-window sort): NaN
     become +inf, so they sort last, and each pixel takes the middle of its finite values.
     """
@@ -111,7 +101,7 @@ def _block_medians(a: np.ndarray) -> np.ndarray:
     n_out = a.shape[0] - w + 1
     if n_out < 1:
         win = np.lib.stride_tricks.sliding_window_view(a, w, axis=0)
-        return _nanmedian(win, axis=-1)
+        return nanmedian(win, axis=-1)
     arr = np.asarray(a, dtype=np.float64)
     finite = ~np.isnan(arr)
     all_finite = bool(finite.all())
@@ -145,26 +135,6 @@ def _block_trimmed_means(a: np.ndarray) -> np.ndarray:
     return np.where(n == inner.shape[-1], total / np.maximum(n, 1), np.nan)
 
 
-def _changepoint(level: np.ndarray, lo: int, hi: int,
-                 candidates: tuple[int, int] | None = None) -> int:
-    """Boundary ``k`` (between rows k and k+1) where one jump on a straight line fits
-    ``level[lo..hi]`` best (least squares; the slope absorbs a slow trend of the levels, which
-    would otherwise pull a two-level split towards the window's ends). ``k`` is sought in
-    ``candidates`` (first, last; default: the whole window).
-    """
-    seg = level[lo:hi + 1]
-    t = np.arange(seg.size, dtype=np.float64)
-    first, last = candidates if candidates is not None else (lo, hi - 1)
-    best, best_cost = first, math.inf
-    for k in range(max(first, lo), min(last, hi - 1) + 1):
-        x = np.column_stack([np.ones_like(t), t, (t > k - lo).astype(np.float64)])
-        coef, *_ = np.linalg.lstsq(x, seg, rcond=None)
-        cost = float(np.sum((seg - x @ coef) ** 2))
-        if cost < best_cost:
-            best, best_cost = k, cost
-    return best
-
-
 def _changes(seg_change: np.ndarray, seg_pair: np.ndarray, offset: int, threshold_sigma: float,
              min_spread: float, max_transition_spread: float, block: int = _BLOCK_LINES,
              seg_level: np.ndarray | None = None, long_blocks: bool = False
@@ -180,15 +150,15 @@ def _changes(seg_change: np.ndarray, seg_pair: np.ndarray, offset: int, threshol
 
     The moved segments must agree on where they changed: by the middle of each one's plateau
     of block changes, or else by where each one jumped. With ``seg_level[k, s]`` (rows ×
-    segments, the level of each line per segment) that is :func:`_changepoint` on its levels;
+    segments, the level of each line per segment) that is :func:`changepoint` on its levels;
     without, the line pair of its largest change, which over a run of candidates longer than
     a line or two may be that of the largest line offset, the same in every segment, so that
     a shallow step edge would pass. With ``long_blocks`` the spread leaves out the boundaries
     within a block of the largest change (whose plateau would inflate it when blocks are long
     against the frame).
     """
-    seg = seg_change - _nanmedian(seg_change, axis=0)[None, :]
-    line = _nanmedian(seg, axis=1)
+    seg = seg_change - nanmedian(seg_change, axis=0)[None, :]
+    line = nanmedian(seg, axis=1)
     finite = np.isfinite(line)
     if finite.sum() < 3:
         return []
@@ -232,7 +202,7 @@ def _changes(seg_change: np.ndarray, seg_pair: np.ndarray, offset: int, threshol
         if seg_level is not None:
             wlo = max(i + offset - block, 0)
             whi = min(j - 1 + offset + block, seg_level.shape[0] - 1)
-            jump = np.array([_changepoint(seg_level[:, k], wlo, whi)
+            jump = np.array([changepoint(seg_level[:, k], wlo, whi)
                              for k in np.flatnonzero(moved)])
         else:
             rlo, rhi = max(i + offset - 1, 0), min(j - 1 + offset + 1, seg_pair.shape[0] - 1)
@@ -245,7 +215,7 @@ def _changes(seg_change: np.ndarray, seg_pair: np.ndarray, offset: int, threshol
 
 def _detrend(a: np.ndarray) -> np.ndarray:
     """Each column minus its median over rows (tilt, steady drift)."""
-    return a - _nanmedian(a, axis=0)[None, :]
+    return a - nanmedian(a, axis=0)[None, :]
 
 
 def _first_new_line(step: np.ndarray, first: int, last: int, sign: float,
@@ -293,7 +263,7 @@ def _long_height_changes(seg_pair: np.ndarray, pair: np.ndarray, seg_lev: np.nda
                                                 _MIN_HEIGHT_SPREAD_M, _MAX_TRANSITION_SPREAD,
                                                 block=wl, seg_level=seg_lev,
                                                 long_blocks=True):
-        k = _changepoint(level, max(first - wl, 0), min(last + wl, ny - 1),
+        k = changepoint(level, max(first - wl, 0), min(last + wl, ny - 1),
                          candidates=(first, last))
         events.append((strength, k if slow_direction == "decreasing" else k + 1, sign))
     return [(strength, row) for strength, row, sign in events
@@ -331,7 +301,7 @@ def detect_tip_changes(ds: xr.Dataset, *, threshold_sigma: float = 8.0) -> list[
       levels from the cumulative line-to-line changes of each segment, which step edges and
       adsorbates hardly move). There the spread leaves out the change's own plateau, each
       moved segment must jump at the same line within one line (a least-squares jump on a
-      straight line, :func:`_changepoint`), the line is placed the same way on the whole
+      straight line, :func:`changepoint`), the line is placed the same way on the whole
       line's levels, and a rise and fall within 32 lines is a transient band; changes within
       32 lines of the first or last row are left to the 8-line blocks.
     * *resolution*: the line roughness, the median gradient magnitude per segment and line
@@ -348,7 +318,7 @@ def detect_tip_changes(ds: xr.Dataset, *, threshold_sigma: float = 8.0) -> list[
     edge crossing the frame moves only the segments it passes through, by its own height), (2)
     those segments changed at the same line, within 1.5 lines by the middle of their plateaus
     of block changes (3 for the roughness, whose block means change gradually), or else
-    within one line by each segment's own best jump (:func:`_changepoint` on its line levels;
+    within one line by each segment's own best jump (:func:`changepoint` on its line levels;
     for the roughness, its largest line-to-line change) — a mid-line change splits them over
     two lines, while a shallow step crosses the segments at lines that drift along the fast
     axis — and (3) it
@@ -386,7 +356,7 @@ def detect_tip_changes(ds: xr.Dataset, *, threshold_sigma: float = 8.0) -> list[
     diff = blocks[ks + 1] - blocks[ks - w + 1]
     seg_h = _segment_medians(diff, nx)
     seg_pair = _detrend(_segment_medians(h[1:] - h[:-1], nx))
-    pair = _nanmedian(seg_pair, axis=1)
+    pair = nanmedian(seg_pair, axis=1)
     seg_lev = _levels(seg_pair)
     for first, last, sign, strength in _changes(seg_h, seg_pair, w - 1, threshold_sigma,
                                                 _MIN_HEIGHT_SPREAD_M, _MAX_TRANSITION_SPREAD,
@@ -426,7 +396,7 @@ def detect_tip_changes(ds: xr.Dataset, *, threshold_sigma: float = 8.0) -> list[
         rblocks = _block_trimmed_means(logr)
         change = rblocks[ks + 1] - rblocks[ks - w + 1]
         seg_rpair = _detrend(logx[1:] - logx[:-1])
-        rpair = _nanmedian(seg_rpair, axis=1)
+        rpair = nanmedian(seg_rpair, axis=1)
         events = [(strength, _first_new_line(rpair, first, last, sign, slow), sign)
                   for first, last, sign, strength in _changes(
                       change, seg_rpair, w - 1, threshold_sigma, _MIN_LOG_ROUGHNESS_SPREAD,

@@ -8,12 +8,12 @@ from __future__ import annotations
 
 import itertools
 import math
-import warnings
 
 import numpy as np
 import pytest
 from scipy import ndimage
 
+from pipeline.stages.level import edges as E
 from pipeline.stages.level import lines as Li
 from pipeline.stages.level import robust as R
 from pipeline.stages.level import scars as S
@@ -37,18 +37,6 @@ def test_median_and_mad_equal_numpy() -> None:
         assert R._mad_scale(x) == R.MAD_TO_SIGMA * mad
     # numpy: NaN in, NaN out (the median itself: tests/stages/test_stats.py)
     assert all(math.isnan(v) for v in R._median_mad(np.array([1.0, np.nan, 3.0, 4.0])))
-
-
-def test_row_nanmedian_equals_numpy_nanmedian() -> None:
-    rng = np.random.default_rng(2)
-    a = rng.normal(size=(40, 33))
-    a[rng.random(a.shape) < 0.3] = np.nan
-    a[5] = np.nan  # a row without finite values
-    a[7, :-1] = np.nan  # a row with one
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # numpy warns on the all-NaN row
-        ref = np.nanmedian(a, axis=1)  # numpy.nanmedian is the reference
-    np.testing.assert_array_equal(R._row_nanmedian(a), ref)
 
 
 def test_reweighting_functions_are_the_textbook_ones() -> None:
@@ -86,7 +74,7 @@ def test_sobel_magnitude_equals_ndimage_within_an_ulp() -> None:
         x = rng.normal(size=shape) * 1e-10
         ref = np.hypot(ndimage.sobel(x, axis=1, mode="nearest"),
                        ndimage.sobel(x, axis=0, mode="nearest")) / 8.0  # scipy.ndimage
-        np.testing.assert_allclose(Li._sobel_magnitude(x), ref, rtol=4.5e-16, atol=0)
+        np.testing.assert_allclose(E._sobel_magnitude(x), ref, rtol=4.5e-16, atol=0)
 
 
 def _pairs_brute_force(labels: np.ndarray, reach: int) -> dict[tuple[int, int], int]:

@@ -113,20 +113,6 @@ def _median_mad(x: np.ndarray) -> tuple[float, float]:
     return med, _median_inplace(a)
 
 
-def _row_nanmedian(a: np.ndarray) -> np.ndarray:
-    """``numpy.nanmedian(a, axis=1)`` of a 2-D array (rows without finite entries: NaN).
-
-    One sort of all rows (NaN sort last) and the middle of each row's finite values: the same
-    numbers, without numpy's per-row masked-array path.
-    """
-    srt = np.sort(a, axis=1)
-    n = np.sum(~np.isnan(a), axis=1)
-    lo = np.clip((n - 1) // 2, 0, None)[:, None]
-    hi = np.clip(n // 2, 0, None)[:, None]
-    med = 0.5 * (np.take_along_axis(srt, lo, 1) + np.take_along_axis(srt, hi, 1))[:, 0]
-    return np.where(n > 0, med, np.nan)
-
-
 def _mad_scale(r: np.ndarray) -> float:
     if r.size == 0:
         return 0.0

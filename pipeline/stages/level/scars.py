@@ -11,7 +11,8 @@ from scipy import ndimage
 from pipeline.errors import ProcessingError
 from pipeline.model import Flag, add_warning, stage
 from pipeline.stages.level.frame import _copy_with, _inputs, _name, _require, _warn_if_constant
-from pipeline.stages.level.robust import _TINY_M, _mad_scale, _row_nanmedian
+from pipeline.stages.level.robust import _TINY_M, _mad_scale
+from pipeline.stages.stats import nanmedian
 
 #: Gaps (pixels) bridged when measuring the length of a streak in :func:`repair_scars`.
 _SCAR_GAP_PX = 4
@@ -60,7 +61,7 @@ def _dilate_cross(mask: np.ndarray, iterations: int) -> np.ndarray:
 
 def _row_median(a: np.ndarray) -> np.ndarray:
     """Median of each row over its finite entries (0 for rows without any)."""
-    med = _row_nanmedian(a)
+    med = nanmedian(a, axis=1)
     return np.where(np.isnan(med), 0.0, med)
 
 

@@ -11,6 +11,7 @@ from scipy import ndimage
 
 from pipeline.errors import ProcessingError
 from pipeline.model import Flag, add_warning, stage
+from pipeline.stages.level.edges import _masked_smooth, _sobel_magnitude
 from pipeline.stages.level.frame import (
     _add_variance,
     _coords,
@@ -20,7 +21,6 @@ from pipeline.stages.level.frame import (
     _require,
     _warn_if_constant,
 )
-from pipeline.stages.level.lines import _masked_smooth, _sobel_magnitude
 from pipeline.stages.level.robust import (
     MAD_TO_SIGMA,
     _Basis,
