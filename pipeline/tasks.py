@@ -345,10 +345,10 @@ def lattice_of_frame(staged: str, config: Config) -> LatticeCalibration | None:
 def finalize_frame(
     staged: str, store: str, config: Config, drift_model: DriftModel | None, run_t0: str,
     z_scale: float, z_scale_uncertainty: float, extra_attrs: dict[str, Any],
-    stage_result: bool = True, run_step: tuple[float, float] | None = None,
+    stage_result: bool = True, consensus: tuple[float, float] | None = None,
 ) -> FrameSummary:
     """Run-level corrections of one staged frame: drift inside it, the comparison of its unit
-    step with the run's ``run_step`` (step and scatter, m; skipped when None), the z scale.
+    step with the run's ``consensus`` (step and scatter, m; skipped when None), the z scale.
 
     The finished frame is staged under ``store`` (``final/``), or, with ``stage_result=False``,
     returned in the summary's ``dataset`` for the scheduler to write into the store at once.
@@ -364,10 +364,10 @@ def finalize_frame(
             t0 = (parse_time(ds.attrs["start_time"]) - parse_time(run_t0)).total_seconds()
             ds = correct_drift(ds, model=drift_model, frame_t0_s=t0,
                                order=d.interpolation_order, reference=d.correction_reference)
-        if run_step is not None:
+        if consensus is not None:
             stage = "compare_step_with_run"
             ds = compare_step_with_run(
-                ds, run_step_m=run_step[0], run_scatter_m=run_step[1],
+                ds, run_step_m=consensus[0], run_scatter_m=consensus[1],
                 threshold_sigma=config.quality.step_disagreement_sigma)
         if z_scale != 1.0:
             stage = "scale_height"

@@ -48,6 +48,47 @@ def heights():
 
 
 @pytest.fixture(scope="session")
+def au_frame():
+    """A function: simulated 256² Au(111)-like frame (100 nm) as the height stage hands it on.
+
+    ``au_frame(seed, normal_deg=..., ...)``: step edges at ``step_offsets_m`` with their
+    normals at ``normal_deg`` from the fast axis (90° = edges along it), 12 adsorbates, 3 pm z
+    noise, white line offsets, optionally drift, a plane tilt and a tip change of ``tip_m``
+    from ``tip_row`` on (the frame of ``benchmarks/sweep_tip_changes.py``).
+    """
+    from datetime import datetime
+
+    import numpy as np
+
+    from pipeline.model import make_height_frame, validate_raw_frame
+    from pipeline.simulate import Adsorbate, Step, Surface, simulate_constant_current_frame
+
+    def make(seed: int, *, normal_deg: float, tip_row: int | None = None, tip_m: float = 0.0,
+             line_offsets_m: float = 20e-12, step_offsets_m: tuple = (-20e-9, 10e-9),
+             drift: bool = True, slopes: tuple = (5e-3, -3e-3)):
+        rng = np.random.default_rng(seed)
+        steps = tuple(Step(offset_m=o, angle_deg=normal_deg, levels=1) for o in step_offsets_m)
+        ads = tuple(Adsorbate(float(px), float(py), 1.5e-10, 6e-10)
+                    for px, py in rng.uniform(-45e-9, 45e-9, (12, 2)))
+        surf = Surface(lattice_constant_m=4.078e-10, steps=steps, corrugation_m=20e-12,
+                       corrugation_angle_deg=12.0, adsorbates=ads, slope_x=slopes[0],
+                       slope_y=slopes[1])
+        kw: dict = {"tip_change_row": tip_row, "tip_change_m": tip_m} if tip_row is not None \
+            else {}
+        if drift:
+            kw["drift_velocity_m_per_s"] = (0.42e-9 / 60, -0.27e-9 / 60)
+        raw, _ = simulate_constant_current_frame(
+            surf, rng=rng, phi_eV=4.5, setpoint_A=1e-10, bias_V=0.5, nx=256, ny=256,
+            size_x_m=100e-9, line_time_s=0.1, start_time=datetime(2031, 5, 4, 22, 0, 0),
+            z_noise_m=3e-12, line_offsets_m=line_offsets_m, backward=False, **kw)
+        raw = validate_raw_frame(raw)
+        return make_height_frame(raw, raw["z"].values,
+                                 uncertainty=np.full(raw["z"].shape, 3e-12))
+
+    return make
+
+
+@pytest.fixture(scope="session")
 def tiny_store(tiny_run: Path, tmp_path_factory: pytest.TempPathFactory, serial_config: Config):
     """The tiny run processed once with the serial executor: (store path, summary)."""
     from pipeline.batch import run_batch

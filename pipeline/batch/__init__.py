@@ -288,7 +288,7 @@ def _run(
 def _finish(
     executor: Any, builder: StoreBuilder, order: list[str], staged_paths: dict[str, str],
     config: Config, drift_model: Any, run_t0: str, z_scale: tuple[float, float],
-    run_step: tuple[float, float] | None, extra: dict[str, Any], run_attrs: dict[str, Any],
+    consensus: tuple[float, float] | None, extra: dict[str, Any], run_attrs: dict[str, Any],
     summary: RunSummary,
     fail: Callable[[Failure], None], emit: Callable[[Event], None],
 ) -> None:
@@ -302,7 +302,7 @@ def _finish(
     calibrate_lateral = bool(config.calibrate.lattice_constant_m)
     jobs = [(staged_paths[f], str(builder.path), config, drift_model
              if config.drift.correct_within_frames else None, run_t0, *z_scale, extra,
-             calibrate_lateral, run_step) for f in order]
+             calibrate_lateral, consensus) for f in order]
     for _, res in run_pass(executor, "finishing", tasks.finalize_frame, jobs, emit):
         if res.failure:
             fail(res.failure)

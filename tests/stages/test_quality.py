@@ -186,32 +186,7 @@ def test_small_frames_and_bad_threshold() -> None:
         detect_tip_changes(frame(surface()), threshold_sigma=0)
 
 
-def offset_frame(seed: int, *, normal_deg: float, tip_row: int | None = None,
-                 tip_m: float = 0.0, line_offsets_m: float = 20e-12) -> xr.Dataset:
-    """Simulated 256² Au(111) frame, 100 nm: two step edges with their normals at
-    ``normal_deg`` (90° = edges along the fast axis), 12 adsorbates, drift, 3 pm z noise and
-    white line offsets; optionally a tip change of ``tip_m`` from ``tip_row`` on."""
-    from datetime import datetime
-
-    from pipeline.simulate import Adsorbate, Step, Surface, simulate_constant_current_frame
-
-    rng = np.random.default_rng(seed)
-    steps = tuple(Step(offset_m=o, angle_deg=normal_deg, levels=1) for o in (-20e-9, 10e-9))
-    ads = tuple(Adsorbate(float(px), float(py), 1.5e-10, 6e-10)
-                for px, py in rng.uniform(-45e-9, 45e-9, (12, 2)))
-    surf = Surface(lattice_constant_m=4.078e-10, steps=steps, corrugation_m=20e-12,
-                   corrugation_angle_deg=12.0, adsorbates=ads, slope_x=5e-3, slope_y=-3e-3)
-    tip = {"tip_change_row": tip_row, "tip_change_m": tip_m} if tip_row is not None else {}
-    raw, _ = simulate_constant_current_frame(
-        surf, rng=rng, phi_eV=4.5, setpoint_A=1e-10, bias_V=0.5, nx=256, ny=256,
-        size_x_m=100e-9, line_time_s=0.1, start_time=datetime(2031, 5, 4, 22, 0, 0),
-        drift_velocity_m_per_s=(0.42e-9 / 60, -0.27e-9 / 60), z_noise_m=3e-12,
-        line_offsets_m=line_offsets_m, backward=False, **tip)
-    raw = validate_raw_frame(raw)
-    return make_height_frame(raw, raw["z"].values, uncertainty=np.full(raw["z"].shape, 3e-12))
-
-
-def test_small_tip_changes_under_line_offsets_are_found_on_long_blocks() -> None:
+def test_small_tip_changes_under_line_offsets_are_found_on_long_blocks(au_frame) -> None:
     # 80 pm tip changes under 20 pm line offsets: the 8-line blocks alone find 3 of these 8
     # (their noise, 1.25 × 20 pm × sqrt(2/8), sets an 8σ threshold near 100 pm); the 32-line
     # levels halve that. Truth: the simulator's tip-change row. The sweep behind the numbers
@@ -221,7 +196,7 @@ def test_small_tip_changes_under_line_offsets_are_found_on_long_blocks() -> None
         rng = np.random.default_rng(100 + seed)
         normal = float(rng.choice([10.0, 35.0, 70.0, 100.0]))
         row = int(rng.integers(40, 216))
-        ds = offset_frame(seed, normal_deg=normal, tip_row=row,
+        ds = au_frame(seed, normal_deg=normal, tip_row=row,
                           tip_m=80e-12 if seed % 2 else -80e-12)
         rows = detect_tip_changes(ds)
         assert all(abs(r - row) <= 2 for r in rows), (seed, row, rows)  # none misplaced
@@ -233,35 +208,20 @@ def test_small_tip_changes_under_line_offsets_are_found_on_long_blocks() -> None
                          [(1, 5.0, 20e-12), (2, 2.0, 20e-12), (3, 10.0, 40e-12),
                           (4, 35.0, 40e-12), (5, 80.0, 20e-12), (6, 2.0, 40e-12)])
 def test_line_offsets_and_shallow_steps_are_not_tip_changes(seed: int, edge_deg: float,
-                                                             offsets_m: float) -> None:
+                                                             offsets_m: float, au_frame) -> None:
     # No tip change at all: line offsets, shallow and steep step edges, drift. The last case
     # was reported (row 76) while the 8-line blocks placed segments by their largest line-pair
     # change: with 40 pm offsets that is often the same line in every segment.
-    ds = offset_frame(1000 + seed, normal_deg=90.0 + edge_deg, line_offsets_m=offsets_m)
+    ds = au_frame(1000 + seed, normal_deg=90.0 + edge_deg, line_offsets_m=offsets_m)
     assert detect_tip_changes(ds) == []
 
 
-def test_one_shallow_step_under_line_offsets_is_not_a_tip_change() -> None:
+def test_one_shallow_step_under_line_offsets_is_not_a_tip_change(au_frame) -> None:
     # One step edge 5° from the fast axis across the frame, 20 pm line offsets, no tip change.
     # It was reported (row 97) when the long blocks also placed the segments by their largest
     # line-pair jump: over a long run of candidates that is the largest line offset, the same
     # in every segment, so the step passed as a whole-line change.
-    from datetime import datetime
-
-    from pipeline.simulate import Adsorbate, Step, Surface, simulate_constant_current_frame
-
-    rng = np.random.default_rng(1)
-    ads = tuple(Adsorbate(float(px), float(py), 1.5e-10, 6e-10)
-                for px, py in rng.uniform(-45e-9, 45e-9, (12, 2)))
-    surf = Surface(lattice_constant_m=4.078e-10, steps=(Step(offset_m=0.0, angle_deg=95.0,
-                                                             levels=1),),
-                   corrugation_m=20e-12, corrugation_angle_deg=12.0, adsorbates=ads)
-    raw, _ = simulate_constant_current_frame(
-        surf, rng=rng, phi_eV=4.5, setpoint_A=1e-10, bias_V=0.5, nx=256, ny=256,
-        size_x_m=100e-9, line_time_s=0.1, start_time=datetime(2031, 5, 4, 22, 0, 0),
-        z_noise_m=3e-12, line_offsets_m=20e-12, backward=False)
-    raw = validate_raw_frame(raw)
-    ds = make_height_frame(raw, raw["z"].values, uncertainty=np.full(raw["z"].shape, 3e-12))
+    ds = au_frame(1, normal_deg=95.0, step_offsets_m=(0.0,), drift=False, slopes=(0.0, 0.0))
     assert detect_tip_changes(ds) == []
 
 
