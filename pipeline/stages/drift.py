@@ -25,8 +25,9 @@ Typical use by the batch (three passes over levelled frames)::
 This module is the public face; the work is done in private-by-convention modules:
 :mod:`~pipeline.stages.drift_frames` (frame geometry, pixel clocks, :func:`frame_times_s`,
 :func:`plan_frame_pairs`), :mod:`~pipeline.stages.drift_shift` (:class:`FrameShift`,
-:func:`measure_frame_shift`), :mod:`~pipeline.stages.drift_model` (:class:`DriftModel` and its
-fits, unit conversions), :mod:`~pipeline.stages.drift_table` (:func:`drift_table`,
+:func:`measure_frame_shift`), :mod:`~pipeline.stages.drift_model` (:class:`DriftModel`, unit
+conversions), :mod:`~pipeline.stages.drift_fit` (:func:`fit_drift_model`,
+:func:`fit_drift_series`), :mod:`~pipeline.stages.drift_table` (:func:`drift_table`,
 :func:`model_from_table`, z creep) and :mod:`~pipeline.stages.drift_correct`
 (:func:`correct_drift`, up/down pairs). Sub-pixel registration is
 :mod:`pipeline.stages.registration`.
@@ -41,6 +42,7 @@ from pipeline.stages.drift_correct import (
     OUTSIDE_WARNING_FRACTION as OUTSIDE_WARNING_FRACTION,
 )
 from pipeline.stages.drift_correct import UpDownDrift, correct_drift, drift_from_up_down_pair
+from pipeline.stages.drift_fit import fit_drift_model, fit_drift_series
 from pipeline.stages.drift_frames import MIN_OVERLAP_PX as MIN_OVERLAP_PX
 from pipeline.stages.drift_frames import PIXEL_SIZE_TOLERANCE as PIXEL_SIZE_TOLERANCE
 from pipeline.stages.drift_frames import REGISTRATION_EXCLUDED as REGISTRATION_EXCLUDED
@@ -48,8 +50,6 @@ from pipeline.stages.drift_frames import frame_times_s, plan_frame_pairs
 from pipeline.stages.drift_model import NM_PER_MIN_PER_M_PER_S as NM_PER_MIN_PER_M_PER_S
 from pipeline.stages.drift_model import (
     DriftModel,
-    fit_drift_model,
-    fit_drift_series,
     m_per_s_to_nm_per_min,
     nm_per_min_to_m_per_s,
 )
