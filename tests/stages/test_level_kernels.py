@@ -17,7 +17,7 @@ from pipeline.stages.level import edges as E
 from pipeline.stages.level import lines as Li
 from pipeline.stages.level import robust as R
 from pipeline.stages.level import scars as S
-from pipeline.stages.level import terraces as T
+from pipeline.stages.level import segmentation as Sg
 
 
 def _arrays(rng: np.random.Generator) -> list[np.ndarray]:
@@ -100,7 +100,7 @@ def test_adjacent_pairs_equal_brute_force_count() -> None:
         lab, n = ndimage.label(~edges)  # 4-connected regions, as in the segmentation
         labels = lab - 1
         for reach in (1, 3):
-            assert T._adjacent_pairs(labels, n, reach) == _pairs_brute_force(labels, reach)
+            assert Sg._adjacent_pairs(labels, n, reach) == _pairs_brute_force(labels, reach)
 
 
 def test_grid_variance_equals_quadratic_form() -> None:
