@@ -12,6 +12,7 @@ from scipy import fft as sfft
 from scipy import ndimage
 
 from pipeline.model import Flag
+from pipeline.stages.height import conversion as Cv
 from pipeline.stages.height import noise as No
 from pipeline.stages.height import reconstruct as Re
 from pipeline.stages.height import spectrum as Sp
@@ -109,7 +110,7 @@ def test_combined_traces_follow_the_documented_rule() -> None:
     sf, sb = rng.uniform(0.5, 1.0, shape), rng.uniform(0.5, 1.0, shape)
     pf, pb = rng.normal(size=shape), rng.normal(size=shape)
     zero = np.zeros(shape, np.uint8)
-    fw, bw = Re._Trace(hf, sf, pf, zero), Re._Trace(hb, sb, pb, zero)
+    fw, bw = Cv._Trace(hf, sf, pf, zero), Cv._Trace(hb, sb, pb, zero)
     got, n_mism = Re._combine(fw, bw, lag_px=0.0, mismatch_sigma=1.5)
     sd = np.hypot(sf, sb)
     mism = np.abs(hf - hb) > 1.5 * sd
