@@ -9,7 +9,7 @@ import numpy as np
 from scipy import stats
 
 from pipeline.stages import quality as Q
-from pipeline.stages import tip_changes as T
+from pipeline.stages import tip_blocks as T
 from pipeline.stages.stats import nanmedian
 
 
