@@ -141,7 +141,7 @@ def _template_at(a: np.ndarray, b: np.ndarray, mask_a: np.ndarray | None,
                  mask_b: np.ndarray | None, ky: int, kx: int, f: int, u: int, win: str,
                  workers: int | None) -> tuple[Pass, int] | None:
     """A template match on the crops that overlap at the whole-pixel offset ``(ky, kx)``, and
-    its search margin; None if the overlap is too small or the match fails."""
+    its search margin; None if the overlap is too small or there is no match at all."""
     ny, nx = a.shape
     if min(ny - abs(ky), nx - abs(kx)) < MIN_REFINE_OVERLAP_PX:
         return None
@@ -154,7 +154,7 @@ def _template_at(a: np.ndarray, b: np.ndarray, mask_a: np.ndarray | None,
     if min(crop) - 4 * margin < MIN_REFINE_OVERLAP_PX:
         return None
     p = register_template(a[ra, ca], b[rb, cb], ma, mb, u, win, margin, workers)
-    return (p, margin) if p.confidence > 0 else None
+    return (p, margin) if p.peak > 0 else None  # a match, if an ambiguous one (confidence 0)
 
 
 def _coarse_after_checks(coarse: Pass, found: Pass, reach: float, a: np.ndarray,
@@ -262,6 +262,14 @@ def register_images(
     of the moving image under the separable template window by thin matrix products with the
     window's shifted 1-D factors (see :mod:`pipeline.stages.registration_template`). Its
     coefficient is at most 1, with equality at the true shift whatever the window.
+
+    *Near-equal maxima.* On an atomic lattice (what the notch leaves of one) the template
+    surface holds maxima at neighbouring lattice sites within the coefficient's own shortfall
+    ``1 − ρ`` of each other, and the whole-pixel grid can sample the true site's sharp maximum
+    below a wrong one. The highest whole-pixel maximum and up to eight such rivals are
+    compared at 1/4 pixel before one is refined; a rival that then falls short by more than
+    ten standard deviations of the images' noise is told apart and does not lower the
+    confidence (matches with ``1 − ρ ≤ 0.1`` only).
 
     *Weighting.* The plain (not phase-normalised) correlation is the default: STM topographs
     have red spectra and are band-limited well below the pixel Nyquist frequency, so phase

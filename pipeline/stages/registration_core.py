@@ -351,3 +351,33 @@ def upsample_peak(
                + block[jy - 1, jx - 1]) / (4 * step**2)
         hessian = -np.array([[hyy, hyx], [hyx, hxx]])
     return float(ty[jy] + dy * step), float(tx[jx] + dx * step), hessian, float(block[jy, jx])
+
+
+def peak_value(blocks: Callable[[np.ndarray, np.ndarray, int], np.ndarray], cy: float,
+               cx: float, q: int, moves: int = 2) -> float:
+    """Value of the maximum of ``blocks(ty, tx, q)`` near ``(cy, cx)``, to compare maxima.
+
+    A 5 × 5 block at ``1/q`` pixel around the nearest ``1/q``-grid point, moved while its
+    maximum lies on its edge (at most ``moves`` times), then the vertices of the two
+    three-point parabolas through the maximum are added to it. Cheaper than
+    :func:`upsample_peak`: no fine grid, no Hessian. NaN when the block's maximum is still on
+    its edge after the last move (a ridge rising beyond it: no maximum nearby).
+    """
+    step = 1.0 / q
+    cy, cx = round(cy * q) / q, round(cx * q) / q
+    offs = np.arange(-2, 3) * step
+    for _ in range(moves + 1):
+        block = blocks(cy + offs, cx + offs, q)
+        jy, jx = np.unravel_index(int(np.argmax(block)), block.shape)
+        if 0 < jy < 4 and 0 < jx < 4:
+            break
+        cy, cx = cy + offs[jy], cx + offs[jx]
+    else:
+        return math.nan
+    c = float(block[jy, jx])
+    rise = 0.0
+    for cm, cp in ((float(block[jy - 1, jx]), float(block[jy + 1, jx])),
+                   (float(block[jy, jx - 1]), float(block[jy, jx + 1]))):
+        d = parabolic_offset(cm, c, cp)
+        rise += 0.5 * (cp - cm) * d + 0.5 * (cm - 2.0 * c + cp) * d * d
+    return c + rise

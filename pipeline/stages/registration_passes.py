@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import functools
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -18,6 +19,7 @@ from pipeline.stages.registration_core import (
     dft_block,
     irfft2_at,
     parabolic_peak,
+    peak_value,
     prepare,
     upsample_peak,
     window,
@@ -27,15 +29,32 @@ from pipeline.stages.registration_lattice import periodic_notch
 from pipeline.stages.registration_quality import (
     energy,
     lobe_rivals,
-    lobe_uniqueness,
     ls_covariance,
     raw_hessian,
+    rival_gap_sd,
     uniqueness,
 )
 from pipeline.stages.registration_template import template_channels, template_data
 
 #: Fewest usable pixels (fraction of the image) for a registration to be attempted at all.
 MIN_VALID_FRACTION = 0.05
+
+#: Rivals of a template match's peak within its shortfall ``1 − ρ`` that are screened at
+#: sub-pixel resolution besides the peak (strongest first; see :func:`_best_site`).
+SITE_CANDIDATES = 8
+#: Grid (1/this pixel) of the screening of near-equal maxima.
+SCREEN_GRID = 4
+
+#: A refined rival this many noise standard deviations below the best match is told apart
+#: (ten, not five: STM noise is correlated along the scan lines, so the pixels are fewer
+#: independent samples than the template's effective count).
+TELL_APART_SIGMA = 10.0
+
+#: Rivals are told apart only in matches whose shortfall ``1 − ρ`` is at most this: images
+#: that agree to within a tenth of their energy, so that what they differ by can be taken
+#: for noise. (Unrelated images differ by structure, not noise; their near-equal maxima
+#: must all stay rivals.)
+NOISE_LIKE_SHORTFALL = 0.1
 
 
 @dataclass(frozen=True)
@@ -214,16 +233,21 @@ def register_template(
         return FAILED
     padded = np.full((surface.shape[0] + 2, surface.shape[1] + 2), -1.0)
     padded[1:-1, 1:-1] = surface  # no wrap-around for the local maxima
-    # the coefficient's shortfall from 1 is what the images differ by: maxima closer to the
-    # peak than that are indistinguishable from it
-    uniqueness = lobe_uniqueness(padded, jy + 1, jx + 1, peak, indistinct=1.0 - peak)
 
     def block(ty: np.ndarray, tx: np.ndarray, q: int) -> np.ndarray:
         return ncc(dft_block(cross, shape, ty, tx, q), *channels.block(ty, tx, q))
 
-    sy, sx = float(lags[jy]), float(lags[jx])
-    dy, dx = parabolic_peak(surface, jy, jx, wrap=False)
-    shift_y, shift_x, hessian, rho = upsample_peak(block, sy, sx, u, start=(sy + dy, sx + dx))
+    def refine(iy: int, ix: int) -> tuple[float, float, np.ndarray | None, float]:
+        sy, sx = float(lags[iy]), float(lags[ix])
+        dy, dx = parabolic_peak(surface, iy, ix, wrap=False)
+        return upsample_peak(block, sy, sx, u, start=(sy + dy, sx + dx))
+
+    def screen(iy: int, ix: int) -> float:  # the maximum near a whole-pixel one, to 1/4 px
+        dy, dx = parabolic_peak(surface, iy, ix, wrap=False)
+        return peak_value(block, float(lags[iy]) + dy, float(lags[ix]) + dx, SCREEN_GRID)
+
+    (jy, jx), (shift_y, shift_x, hessian, rho), uniqueness = _best_site(
+        padded, jy, jx, peak, screen, refine, sw * sw / w2)
     rho = float(np.clip(rho, 0.0, 1.0))
     # covariance of the weighted least-squares shift: cov = σd² J_w⁻¹ J_w² J_w⁻¹ with
     # J_w ≈ (Σw/Σw²) J_w²; J_w is the numerator's Hessian Σ w ∇A'∇B'ᵀ = ρ's Hessian × ea
@@ -234,6 +258,68 @@ def register_template(
                         grid)
     return Pass(shift_y, shift_x, uniqueness * rho, math.sqrt(max(0.0, 1.0 - rho * rho)),
                 (float(cov[0, 0]), float(cov[0, 1]), float(cov[1, 1])), rho)
+
+
+def _best_site(padded: np.ndarray, jy: int, jx: int, peak: float,
+               screen: Callable[[int, int], float],
+               refine: Callable[[int, int], tuple[float, float, np.ndarray | None, float]],
+               n_eff: float) -> tuple[tuple[int, int], tuple[float, float, np.ndarray | None,
+                                                           float], float]:
+    """The best of the near-equal maxima of a template surface, and its uniqueness.
+
+    ``padded`` is the whole-pixel surface with a border of −1, ``(jy, jx)`` its highest point
+    (unpadded indices); ``screen(iy, ix)`` is the value of the sub-pixel maximum near a
+    whole-pixel one (on a 1/4-pixel grid, parabola vertex) and ``refine(iy, ix)`` that maximum
+    at full resolution. The
+    coefficient's shortfall ``1 − peak`` is what the images differ by, and maxima closer to the
+    peak than that count as indistinguishable from it (:func:`lobe_rivals`). On an atomic
+    lattice (what the Fourier notch leaves of one) those are neighbouring lattice sites, and
+    the whole-pixel grid can sample the true site's sharp maximum up to half a pixel off its
+    top, below a wrong site that happens to lie on the grid. So the highest point and up to
+    :data:`SITE_CANDIDATES` of its indistinguishable rivals are each screened, and the best one
+    wins and is refined.
+
+    A screened rival is then told apart when it falls short of the winner by more than
+    :data:`TELL_APART_SIGMA` standard deviations of the images' noise in the gap
+    (:func:`rival_gap_sd`, with ``n_eff = (Σw)²/Σw²`` the effective pixel count of the
+    template weights), provided the match is good enough for its shortfall to be taken for
+    noise (``1 − ρ ≤`` :data:`NOISE_LIKE_SHORTFALL`). Told-apart rivals leave the uniqueness:
+    ``1 − second/peak`` on the whole-pixel surface, ``second`` the highest rival left.
+
+    Returns
+    -------
+    tuple
+        The winner's whole-pixel indices, its refinement ``(shift_y, shift_x, hessian, ρ)``
+        and the uniqueness.
+    """
+    py, px = padded.shape
+
+    def site(iy: int, ix: int, r: np.ndarray) -> tuple[int, int]:  # lobe_rivals wraps offsets
+        return (iy + 1 + int(r[0])) % py - 1, (ix + 1 + int(r[1])) % px - 1
+
+    rivals = lobe_rivals(padded, jy + 1, jx + 1, peak, indistinct=1.0 - peak)
+    close = rivals[rivals[:, 2] >= 2.0 * peak - 1.0] if rivals.size else rivals
+    close = close[np.argsort(-close[:, 2], kind="stable")][:SITE_CANDIDATES]
+    sites = [(jy, jx)] + [site(jy, jx, r) for r in close]
+    values = [screen(*s) for s in sites] if len(sites) > 1 else [peak]
+    # a site without a maximum nearby (NaN) neither wins nor is told apart
+    best = int(np.nanargmax(values)) if not np.all(np.isnan(values)) else 0
+    found = refine(*sites[best])
+    rho = found[3]
+    if best:  # a rival's refinement beat the whole-pixel peak's: rivals around the winner
+        jy, jx = sites[best]
+        peak = float(padded[jy + 1, jx + 1])
+        rivals = lobe_rivals(padded, jy + 1, jx + 1, peak, indistinct=1.0 - peak)
+    screened = {s: v for k, (s, v) in enumerate(zip(sites, values, strict=True)) if k != best}
+    left = []
+    for r in rivals:
+        value = screened.get(site(jy, jx, r), math.nan)
+        gap = rho - value if math.isfinite(value) else 0.0
+        if 1.0 - rho <= NOISE_LIKE_SHORTFALL and gap > 0 and \
+                gap >= TELL_APART_SIGMA * rival_gap_sd(1.0 - rho, gap, n_eff):
+            continue
+        left.append(r)
+    return (jy, jx), found, uniqueness(np.reshape(left, (-1, 3)), peak)
 
 
 # --------------------------------------------------------------------------------------------

@@ -58,6 +58,33 @@ def uniqueness(rivals: np.ndarray, peak: float) -> float:
     return float(np.clip(1.0 - max(second, 0.0) / peak, 0.0, 1.0))
 
 
+def rival_gap_sd(shortfall: float, gap: float, n_eff: float) -> float:
+    """Standard deviation from noise of the gap between two maxima of a correlation coefficient.
+
+    For ``A = S + n_A`` and ``B = S(· − τ) + n_B``, white noise of equal variance ``σ²`` in both
+    images and all of the peak's shortfall ``1 − ρ`` taken as noise (``1 − ρ = Nσ²/E``,
+    ``E = ‖S‖²``): a rival maximum at ``τ'`` falls short by ``Δρ = D/(2E)`` with
+    ``D = ‖S − S(· − (τ' − τ))‖²``, and the noise adds ``(⟨n_A, d⟩ + ⟨n_B, d'⟩)/E``, of
+    variance ``2σ²D/E²``. So ``sd(Δρ) = sqrt(4 (1 − ρ) Δρ / N)``, ``N`` the (effective) number
+    of pixels (checked by a Monte Carlo simulation in the tests).
+
+    Parameters
+    ----------
+    shortfall : float
+        ``1 − ρ`` of the peak.
+    gap : float
+        ``Δρ``, the peak's coefficient minus the rival's.
+    n_eff : float
+        Effective number of pixels, ``(Σw)²/Σw²`` for weights ``w``.
+
+    Returns
+    -------
+    float
+        The standard deviation of ``Δρ`` from the images' noise.
+    """
+    return math.sqrt(4.0 * max(shortfall, 0.0) * max(gap, 0.0) / n_eff)
+
+
 def lobe_rivals(surface: np.ndarray, py: int, px: int, peak: float, *,
                 indistinct: float = 0.0) -> np.ndarray:
     """The local maxima ``(dy, dx, value)`` that compete with the peak at ``(py, px)``:

@@ -115,6 +115,23 @@ def test_parabolic_start_reaches_the_same_grid_maximum():
     assert started[1] == pytest.approx(-0.62, abs=0.025)
 
 
+def test_peak_value_of_a_separable_quadratic_is_exact():
+    # A separable quadratic peak (value 0.9 at (0.61, -0.37)): the two per-axis parabola
+    # vertices are exact, whatever the 1/4 px grid misses (exact quadratic: common practice).
+    # From a start 0.6 px off too; a ridge still rising after two moves has no maximum
+    # nearby and gives NaN.
+    def f(ty, tx, q=None):
+        return 0.9 - (ty[:, None] - 0.61) ** 2 - 0.5 * (tx[None, :] + 0.37) ** 2
+
+    assert core.peak_value(f, 0.0, 0.0, 4) == pytest.approx(0.9, abs=1e-12)
+    assert core.peak_value(f, 0.6, -0.4, 4) == pytest.approx(0.9, abs=1e-12)
+
+    def ridge(ty, tx, q=None):
+        return ty[:, None] + 0.0 * tx[None, :]
+
+    assert np.isnan(core.peak_value(ridge, 0.0, 0.0, 4))
+
+
 def test_results_do_not_depend_on_what_was_registered_before():
     a, b = smooth(7, (200, 180)), np.roll(smooth(7, (200, 180)), (3, -5), axis=(0, 1))
     c, d = smooth(8, (128, 160)), np.roll(smooth(8, (128, 160)), (-2, 4), axis=(0, 1))
