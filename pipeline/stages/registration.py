@@ -266,7 +266,7 @@ def register_images(
     *Near-equal maxima.* On an atomic lattice (what the notch leaves of one) the template
     surface holds maxima at neighbouring lattice sites within the coefficient's own shortfall
     ``1 − ρ`` of each other, and the whole-pixel grid can sample the true site's sharp maximum
-    below a wrong one. The highest whole-pixel maximum and up to eight such rivals are
+    below a wrong one. The highest whole-pixel maximum and up to four such rivals are
     compared at 1/4 pixel before one is refined; a rival that then falls short by more than
     ten standard deviations of the images' noise is told apart and does not lower the
     confidence (matches with ``1 − ρ ≤ 0.1`` only). Over the 80 varied simulated pairs of

@@ -41,7 +41,7 @@ MIN_VALID_FRACTION = 0.05
 
 #: Rivals of a template match's peak within its shortfall ``1 − ρ`` that are screened at
 #: sub-pixel resolution besides the peak (strongest first; see :func:`_best_site`).
-SITE_CANDIDATES = 8
+SITE_CANDIDATES = 4
 #: Grid (1/this pixel) of the screening of near-equal maxima.
 SCREEN_GRID = 4
 
