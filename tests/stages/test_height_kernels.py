@@ -46,33 +46,28 @@ def test_level_groups_are_the_stable_quantile_bins() -> None:
 
 
 def test_buffered_fft_equals_scipy_fft() -> None:
-    # single precision, against scipy.fft in double: float32 rounding (2^-24 ≈ 6e-8) times
-    # the sum of 1920 terms' magnitudes, well under 1e-5 of the largest coefficient
     rng = np.random.default_rng(14)
-    x = rng.normal(size=(48, 40)).astype(np.float32)
+    x = rng.normal(size=(48, 40))
     fft = Sp._FFT2(x.shape)
     spec = fft.forward(x)
-    assert spec.dtype == np.complex64
-    ref = sfft.rfft2(x.astype(np.float64))
-    np.testing.assert_allclose(spec, ref, rtol=0, atol=1e-5 * np.abs(ref).max())
-    back = fft.inverse(spec)
-    assert back.dtype == np.float32
-    np.testing.assert_allclose(back, x, rtol=0, atol=1e-5 * np.abs(x).max())
+    np.testing.assert_allclose(spec, sfft.rfft2(x), rtol=1e-13, atol=1e-12)  # scipy.fft
+    np.testing.assert_allclose(fft.inverse(spec), sfft.irfft2(spec, s=x.shape), rtol=1e-13,
+                               atol=1e-13)
 
 
 @pytest.mark.parametrize("rows", ["few", "all"])
 def test_gap_fill_steps_equal_plain_landweber(rows: str) -> None:
     rng = np.random.default_rng(15)
     ny, nx = 40, 36
-    x = rng.normal(size=(ny, nx)).astype(np.float32)  # the transforms' precision
+    x = rng.normal(size=(ny, nx))
     gap = np.zeros((ny, nx), bool)
     if rows == "few":
         gap[[3, 17, 18], 5:9] = True
     else:
         gap[np.arange(ny), rng.integers(0, nx, size=ny)] = True
     g2 = rng.random((ny, nx // 2 + 1))
-    ref = x.astype(np.float64)
-    for _ in range(4):  # x[gap] -= (G² x)[gap], G² applied with scipy.fft in double precision
+    ref = x.copy()
+    for _ in range(4):  # x[gap] -= (G² x)[gap], G² applied with scipy.fft (the reference)
         ref[gap] -= sfft.irfft2(sfft.rfft2(ref) * g2, s=(ny, nx))[gap]
     fft = Sp._FFT2((ny, nx))
     got = x.copy()
@@ -80,9 +75,8 @@ def test_gap_fill_steps_equal_plain_landweber(rows: str) -> None:
     spec = fft.forward(got)
     for _ in range(4):
         fill.step(spec, spec * g2)
-    # float32 rounding: 1e-5 of the map's (unit) scale
-    np.testing.assert_allclose(got, ref, rtol=0, atol=1e-5)
-    np.testing.assert_allclose(spec, sfft.rfft2(got.astype(np.float64)), rtol=0, atol=1e-4)
+    np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(spec, sfft.rfft2(got), rtol=0, atol=1e-11)
 
 
 def test_take_columns_equals_fancy_indexing() -> None:

@@ -148,9 +148,7 @@ def estimate_white_noise(
 
     With ``level``, the pixels are grouped into 16 quantile bins of the level, σ² is
     measured in each, and ``a² + b²·level²`` is fitted by non-negative least squares with
-    relative weights. The transforms run in single precision, on the map scaled to unit
-    largest magnitude (σ is linear in the map; the rounding moves it by about 1e-6 of itself).
-    Precision: about 2 % in σ for a 128×128 frame. A broad-band signal at
+    relative weights. Precision: about 2 % in σ for a 128×128 frame. A broad-band signal at
     the highest spatial frequencies (a surface sampled at its own resolution) is
     indistinguishable from noise and inflates the estimate: the uncertainty errs on the safe
     side.
@@ -173,15 +171,9 @@ def estimate_white_noise(
     filled = _remove_plane(arr if ok.all() else _fill_invalid(arr, ok), ok)
     grid = _spectral_grid(ny, nx)
     w, w2, gain, mult, band = grid.window, grid.window2, grid.gain, grid.mult, grid.band
+    windowed = filled * w
     if band.sum() < 8:
         return nan
-    # The transforms run in single precision (twice as fast; σ is good to ~2 % statistically,
-    # the rounding changes it by ~1e-6), on the map scaled to unit largest magnitude so that no
-    # power falls below the float32 range; σ is scaled back at the end.
-    scale = float(np.max(np.abs(filled[ok])))
-    if not (scale > 0 and math.isfinite(scale)):
-        return nan
-    windowed = (filled * (w / scale)).astype(np.float32)
     fft = _FFT2((ny, nx))
     spec = fft.forward(windowed)
     # Localised defects (spikes, scars, the edge of a step) are treated like gaps: they are
@@ -210,7 +202,7 @@ def estimate_white_noise(
     levels = _LevelBins(lev[stats], stats.sum()) if lev is not None else None
     fill = _GapFill(windowed, bad, fft) if bad.any() else None
     w_stats = w[stats]
-    corr = np.empty(shape, dtype=np.float32)
+    corr = np.empty(shape)
     est = nan
     for n_fill in (_INPAINT_ITERATIONS, _INPAINT_ITERATIONS // 2):  # pass 2 starts warm
         g = np.where(_peak_bins(power, _PEAK_FACTOR * expected), 0.0, gain)
@@ -236,7 +228,7 @@ def estimate_white_noise(
         if not expected > 0:
             break
         power = spec.real**2 + spec.imag**2
-    return NoiseEstimate(est.sigma * scale, est.constant * scale, est.relative * scale)
+    return est
 
 
 class _LevelBins:

@@ -82,8 +82,8 @@ def _spectral_grid(ny: int, nx: int) -> _Grid:
         mult[-1] = 1.0
     mult2 = np.broadcast_to(mult[None, :], gain.shape)
     w = _hann(ny)[:, None] * _hann(nx)[None, :]
-    grid = _Grid(window=w, window2=w**2, gain=gain.astype(np.float32), mult=mult2,
-                 band=gain > 0.5, kept0=float((mult2 * gain**2).sum()) / (ny * nx))
+    grid = _Grid(window=w, window2=w**2, gain=gain, mult=mult2, band=gain > 0.5,
+                 kept0=float((mult2 * gain**2).sum()) / (ny * nx))
     for arr in (grid.window, grid.window2, grid.gain, grid.band):
         arr.setflags(write=False)
     return grid
@@ -93,7 +93,7 @@ def _spectral_grid(ny: int, nx: int) -> _Grid:
 class _Grid:
     window: np.ndarray  # 2-D Hann window
     window2: np.ndarray  # its square
-    gain: np.ndarray  # raised-cosine high-pass gain on the rfft2 grid (float32, as the FFTs)
+    gain: np.ndarray  # raised-cosine high-pass gain on the rfft2 grid
     mult: np.ndarray  # multiplicity of each rfft2 bin in the full spectrum (1 or 2)
     band: np.ndarray  # bins with gain > 0.5
     kept0: float  # fraction of white-noise energy the plain high-pass keeps
@@ -102,14 +102,14 @@ class _Grid:
 class _FFT2:
     """Real 2-D FFT of one frame shape into preallocated buffers.
 
-    The same transforms (and numbers) as ``rfft2``/``irfft2`` of a float32 map: the two 1-D
-    passes those functions make, with the intermediate in one single-precision buffer instead
-    of a fresh frame-sized array per call.
+    The same transforms (and numbers) as ``rfft2``/``irfft2``: the two 1-D passes those
+    functions make, with the intermediate in one buffer instead of a fresh frame-sized array
+    per call.
     """
 
     def __init__(self, shape: tuple[int, int]) -> None:
         self.nx = shape[1]
-        self.tmp = np.empty((shape[0], shape[1] // 2 + 1), dtype=np.complex64)
+        self.tmp = np.empty((shape[0], shape[1] // 2 + 1), dtype=np.complex128)
 
     def forward(self, x: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
         out = np.empty_like(self.tmp) if out is None else out
