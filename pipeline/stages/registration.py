@@ -268,11 +268,12 @@ def register_images(
     ``1 − ρ`` of each other, and the whole-pixel grid can sample the true site's sharp maximum
     below a wrong one. The highest whole-pixel maximum and up to four such rivals are
     compared at 1/4 pixel before one is refined; a rival that then falls short by more than
-    ten standard deviations of the images' noise is told apart and does not lower the
-    confidence (matches with ``1 − ρ ≤ 0.1`` only). Over the 80 varied simulated pairs of
-    ``benchmarks/sweep_registration.py`` this makes 47 right instead of 42 and 31 right and
-    confident instead of 28; the 4 confident pairs off by more than 0.15 px (0.17-0.42 px,
-    1.3-3.3 of their standard uncertainties) are the same before and after.
+    30 standard deviations of white noise in the images (10 for noise correlated over 3 × 3
+    pixels) is told apart and does not lower the confidence (matches with ``1 − ρ ≤ 0.1``
+    only). Over the 80 varied simulated pairs of ``benchmarks/sweep_registration.py`` this
+    makes 47 right instead of 42 and 31 right and confident instead of 28; the 4 confident
+    pairs off by more than 0.15 px (0.17-0.42 px, 1.3-3.3 of their standard uncertainties)
+    are the same before and after.
 
     *Weighting.* The plain (not phase-normalised) correlation is the default: STM topographs
     have red spectra and are band-limited well below the pixel Nyquist frequency, so phase

@@ -354,7 +354,7 @@ def upsample_peak(
 
 
 def peak_value(blocks: Callable[[np.ndarray, np.ndarray, int], np.ndarray], cy: float,
-               cx: float, q: int, moves: int = 2) -> float:
+               cx: float, q: int, moves: int = 4) -> float:
     """Value of the maximum of ``blocks(ty, tx, q)`` near ``(cy, cx)``, to compare maxima.
 
     A 5 × 5 block at ``1/q`` pixel around the nearest ``1/q``-grid point, moved while its

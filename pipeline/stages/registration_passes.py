@@ -45,10 +45,15 @@ SITE_CANDIDATES = 4
 #: Grid (1/this pixel) of the screening of near-equal maxima.
 SCREEN_GRID = 4
 
-#: A refined rival this many noise standard deviations below the best match is told apart
-#: (ten, not five: STM noise is correlated along the scan lines, so the pixels are fewer
-#: independent samples than the template's effective count).
-TELL_APART_SIGMA = 10.0
+#: A screened rival this many standard deviations (white-noise model, :func:`rival_gap_sd`)
+#: below the best match is told apart. Thirty: ten standard deviations for a mismatch whose
+#: samples are correlated over up to 3 × 3 pixels (the gap's z scales as the square root of
+#: the independent sample count). What two frames differ by is not white: line noise, and
+#: between frames scanned up and down the opposite shear. Measured: the bands of the sample
+#: run's up/down frame pairs reached z = 11-19 at wrong sites (a cut of 10 made two of them
+#: confident, and the up/down drift 6.5 standard deviations off in x); the neighbouring
+#: lattice sites told apart in the Au(111) pairs of the tests have z = 44-99.
+TELL_APART_SIGMA = 30.0
 
 #: Rivals are told apart only in matches whose shortfall ``1 − ρ`` is at most this: images
 #: that agree to within a tenth of their energy, so that what they differ by can be taken

@@ -118,7 +118,7 @@ def test_parabolic_start_reaches_the_same_grid_maximum():
 def test_peak_value_of_a_separable_quadratic_is_exact():
     # A separable quadratic peak (value 0.9 at (0.61, -0.37)): the two per-axis parabola
     # vertices are exact, whatever the 1/4 px grid misses (exact quadratic: common practice).
-    # From a start 0.6 px off too; a ridge still rising after two moves has no maximum
+    # From a start 0.6 px off too; a ridge still rising after four moves has no maximum
     # nearby and gives NaN.
     def f(ty, tx, q=None):
         return 0.9 - (ty[:, None] - 0.61) ** 2 - 0.5 * (tx[None, :] + 0.37) ** 2
