@@ -275,9 +275,9 @@ def _best_site(padded: np.ndarray, jy: int, jx: int, peak: float,
     ``padded`` is the whole-pixel surface with a border of −1, ``(jy, jx)`` its highest point
     (unpadded indices); ``screen(iy, ix)`` is the value of the sub-pixel maximum near a
     whole-pixel one (on a 1/4-pixel grid, parabola vertex) and ``refine(iy, ix)`` that maximum
-    at full resolution. The
-    coefficient's shortfall ``1 − peak`` is what the images differ by, and maxima closer to the
-    peak than that count as indistinguishable from it (:func:`lobe_rivals`). On an atomic
+    at full resolution. The coefficient's shortfall ``1 − peak`` is what the images differ by,
+    and maxima closer to the peak than that count as indistinguishable from it
+    (:func:`lobe_rivals`). On an atomic
     lattice (what the Fourier notch leaves of one) those are neighbouring lattice sites, and
     the whole-pixel grid can sample the true site's sharp maximum up to half a pixel off its
     top, below a wrong site that happens to lie on the grid. So the highest point and up to
@@ -311,18 +311,19 @@ def _best_site(padded: np.ndarray, jy: int, jx: int, peak: float,
     best = int(np.nanargmax(values)) if not np.all(np.isnan(values)) else 0
     found = refine(*sites[best])
     rho = found[3]
-    if best:  # a rival's refinement beat the whole-pixel peak's: rivals around the winner
+    if best:  # a rival's screened maximum beat the whole-pixel peak's: rivals around it
         jy, jx = sites[best]
         peak = float(padded[jy + 1, jx + 1])
         rivals = lobe_rivals(padded, jy + 1, jx + 1, peak, indistinct=1.0 - peak)
     screened = {s: v for k, (s, v) in enumerate(zip(sites, values, strict=True)) if k != best}
     left = []
+    noise_like = 1.0 - rho <= NOISE_LIKE_SHORTFALL
     for r in rivals:
         value = screened.get(site(jy, jx, r), math.nan)
         gap = rho - value if math.isfinite(value) else 0.0
-        if 1.0 - rho <= NOISE_LIKE_SHORTFALL and gap > 0 and \
+        if noise_like and gap > 0 and \
                 gap >= TELL_APART_SIGMA * rival_gap_sd(1.0 - rho, gap, n_eff):
-            continue
+            continue  # told apart
         left.append(r)
     return (jy, jx), found, uniqueness(np.reshape(left, (-1, 3)), peak)
 

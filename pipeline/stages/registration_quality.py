@@ -46,12 +46,6 @@ def _sym2_inverse(m: np.ndarray) -> np.ndarray:
     return np.array([[c / det, -b / det], [-b / det, a / det]])
 
 
-def lobe_uniqueness(surface: np.ndarray, py: int, px: int, peak: float, *,
-                    indistinct: float = 0.0) -> float:
-    """``1 − second/peak`` with ``second`` the highest of the :func:`lobe_rivals`."""
-    return uniqueness(lobe_rivals(surface, py, px, peak, indistinct=indistinct), peak)
-
-
 def uniqueness(rivals: np.ndarray, peak: float) -> float:
     """``1 − second/peak`` with ``second`` the highest of the rivals ``(dy, dx, value)``."""
     second = float(rivals[:, 2].max()) if rivals.size else 0.0
