@@ -16,7 +16,6 @@ listed with their errors in units of the reported standard uncertainties.
 from __future__ import annotations
 
 import argparse
-from datetime import datetime, timedelta
 
 import numpy as np
 
@@ -26,7 +25,7 @@ ADSORBATES = (0, 2, 5, 10, 20, 40)
 
 def pair(seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
     """Two z maps, the true feature displacement (px) and the adsorbate count of one pair."""
-    from pipeline.simulate import random_surface, simulate_constant_current_frame
+    from pipeline.simulate import random_surface, simulate_frame_pair
 
     rng = np.random.default_rng(seed)
     n_ads = int(rng.choice(ADSORBATES))
@@ -36,19 +35,8 @@ def pair(seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
     surface = random_surface(rng, extent_m=(-30e-9, 30e-9, -30e-9, 30e-9),
                              n_steps=int(rng.integers(1, 4)), corrugation_m=corrugation,
                              n_adsorbates=n_ads)
-    n, line_time, t0 = 256, 0.04, datetime(2026, 3, 14, 22)
-    gap_s = n * line_time * 1.05
-    z = []
-    for k in range(2):
-        raw, _ = simulate_constant_current_frame(
-            surface, rng=rng, phi_eV=4.6, setpoint_A=1e-10, bias_V=0.5, nx=n, ny=n,
-            size_x_m=30e-9, size_y_m=30e-9, line_time_s=line_time,
-            start_time=t0 + timedelta(seconds=k * gap_s), run_t0=t0, drift_velocity_m_per_s=v,
-            frame_id=f"f{k}")
-        z.append(raw["z"].values + rng.normal(0, z_noise, (n, n)))
-    # features move by −v·Δt (DESIGN.md §4)
-    truth = -np.array([v[1], v[0]]) * gap_s / (30e-9 / n)
-    return z[0], z[1], truth, n_ads
+    a, b, truth = simulate_frame_pair(surface, rng, drift_velocity_m_per_s=v, z_noise_m=z_noise)
+    return a, b, truth, n_ads
 
 
 def main() -> None:

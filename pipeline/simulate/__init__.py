@@ -2,6 +2,7 @@
 
 - :mod:`~pipeline.simulate.surface`: the analytic sample (terraces, atoms, adsorbates, tilt);
 - :mod:`~pipeline.simulate.frames`: constant-current and constant-height frames;
+- :mod:`~pipeline.simulate.pairs`: two consecutive frames under drift, with the true shift;
 - :mod:`~pipeline.simulate.curves`: approach curves I(z);
 - :mod:`~pipeline.simulate.run`: a whole overnight run (:class:`RunSpec`, presets).
 
@@ -14,6 +15,7 @@ from pipeline.simulate.frames import (
     simulate_constant_current_frame,
     simulate_constant_height_frame,
 )
+from pipeline.simulate.pairs import simulate_frame_pair
 from pipeline.simulate.run import PRESETS, RunSpec, SimulatedFile, preset, simulate_run
 from pipeline.simulate.surface import (
     AU_LATTICE_CONSTANT_M,
@@ -37,5 +39,6 @@ __all__ = [
     "simulate_approach_curves",
     "simulate_constant_current_frame",
     "simulate_constant_height_frame",
+    "simulate_frame_pair",
     "simulate_run",
 ]

@@ -178,26 +178,13 @@ def simulated_pair(n_adsorbates: int, seed: int) -> tuple[np.ndarray, np.ndarray
     """Two consecutive 256² constant-current frames of one simulated gold-like (111) staircase
     (20 pm atomic corrugation; one straight step crosses the window), drifting at
     (10, −5) pm/s, 2 pm z noise; returns both z maps and the true feature displacement (px)."""
-    from datetime import datetime, timedelta
-
-    from pipeline.simulate import random_surface, simulate_constant_current_frame
+    from pipeline.simulate import random_surface, simulate_frame_pair
 
     rng = np.random.default_rng(seed)
     surface = random_surface(rng, extent_m=(-30e-9, 30e-9, -30e-9, 30e-9), n_steps=3,
                              corrugation_m=2e-11, n_adsorbates=n_adsorbates)
-    n, line_time, t0, v = 256, 0.04, datetime(2026, 3, 14, 22), (1e-11, -0.5e-11)
-    gap_s = n * line_time * 1.05
-    z = []
-    for k in range(2):
-        raw, _ = simulate_constant_current_frame(
-            surface, rng=rng, phi_eV=4.6, setpoint_A=1e-10, bias_V=0.5, nx=n, ny=n,
-            size_x_m=30e-9, size_y_m=30e-9, line_time_s=line_time,
-            start_time=t0 + timedelta(seconds=k * gap_s), run_t0=t0, drift_velocity_m_per_s=v,
-            frame_id=f"f{k}")
-        z.append(raw["z"].values + rng.normal(0, 2e-12, (n, n)))
-    # features move by −v·Δt (DESIGN.md §4); the drift during the scan changes it by < 0.2 %
-    truth = -np.array([v[1], v[0]]) * gap_s / (30e-9 / n)
-    return z[0], z[1], truth
+    return simulate_frame_pair(surface, rng, drift_velocity_m_per_s=(1e-11, -0.5e-11),
+                               z_noise_m=2e-12)
 
 
 def test_straight_step_over_a_lattice_is_ambiguous():
