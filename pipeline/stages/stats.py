@@ -1,7 +1,7 @@
 """Small exact statistics shared by the stages (private helpers, no public API).
 
 One fast median for every stage: :func:`median` gives the same number as ``numpy.median``
-(tested), several times faster than its three-index partition; :func:`nanmedian` the same
+(tested), about three times faster on a 512 x 512 frame; :func:`nanmedian` the same
 numbers as ``numpy.nanmedian`` along an axis. :func:`changepoint` places one jump in a series.
 """
 
@@ -14,24 +14,80 @@ import numpy as np
 __all__ = ["changepoint", "median", "median_inplace", "nanmedian"]
 
 
+# Above this many entries the median is found inside a bracket read off a random sample
+# (below it one partition of the whole array is as fast).
+_BRACKET_MIN = 16384
+_SAMPLE = 2048
+
+
 def median_inplace(a: np.ndarray) -> float:
     """``numpy.median`` of a 1-D float64 array that may be reordered (NaN if any is NaN).
 
     One partition at the middle index (the lower middle value for an even count is the
-    largest entry below it): the same number as ``numpy.median``, several times faster than
-    its three-index partition.
+    largest entry below it) gives the same number as ``numpy.median``; large arrays are
+    first narrowed to a few per cent of their entries by :func:`_bracketed_median`.
     """
     n = a.size
     if n == 0:
         return math.nan
+    if n >= _BRACKET_MIN:
+        med = _bracketed_median(a)
+        if med is not None:
+            return med
     k = n // 2
     a.partition(k)
     if math.isnan(float(a[k:].max())):  # NaN sort last: then numpy's median is NaN
         return math.nan
-    hi = float(a[k])
-    if n % 2:
+    return _middle(a, k, odd=bool(n % 2))
+
+
+def _bracketed_median(a: np.ndarray) -> float | None:
+    """The exact median of a large array, or None when the bracket misses.
+
+    The middle ranks of a random sample of ``m`` entries, widened by four standard
+    deviations of a sample rank (``2 sqrt(m)``), bracket the middle value ``[lo, hi]``; the
+    entries inside (a few per cent of the array) are partitioned at the middle rank less
+    the count below ``lo``. The result is the same number as the full partition; when the
+    middle ranks fall outside the bracket (rare), None hands back to it. NaN compare
+    neither below nor above, so they land inside and give NaN, as in ``numpy.median``.
+    """
+    n = a.size
+    k = n // 2
+    sample = a[_sample_index(n)]
+    m = sample.size
+    j = (k * m) // n
+    d = 2 * math.isqrt(m) + 2
+    ranks = [max(j - d, 0), min(j + d, m - 1)]
+    part = np.partition(sample, ranks)
+    lo, hi = float(part[ranks[0]]), float(part[ranks[1]])
+    if math.isnan(lo) or math.isnan(hi):
+        return None
+    below = np.less(a, lo)
+    n_below = int(np.count_nonzero(below))
+    outside = np.greater(a, hi, out=np.empty_like(below))
+    np.logical_or(below, outside, out=below)
+    inside = a[~below]
+    r = k - n_below
+    if r < (n + 1) % 2 or r >= inside.size:  # a middle rank lies outside the bracket
+        return math.nan if np.isnan(inside).any() else None
+    if np.isnan(inside).any():
+        return math.nan
+    inside.partition(r)
+    return _middle(inside, r, odd=bool(n % 2))
+
+
+def _sample_index(n: int) -> np.ndarray:
+    """``_SAMPLE`` indices into ``n`` entries drawn with a fixed seed: a random sample, since
+    a strided one aliases with an image's rows and biases the bracket."""
+    return np.random.default_rng(n).integers(0, n, _SAMPLE)
+
+
+def _middle(a: np.ndarray, r: int, *, odd: bool) -> float:
+    """The median of an array partitioned at ``r`` (its middle rank, or the upper of two)."""
+    hi = float(a[r])
+    if odd:
         return hi
-    return (float(a[:k].max()) + hi) / 2
+    return (float(a[:r].max()) + hi) / 2
 
 
 def median(x: np.ndarray) -> float:
