@@ -4,11 +4,16 @@
 most two tasks in flight per worker; Dask gets all tasks at once (its scheduler balances them)
 and each result is released as soon as it has been taken, so results stream and memory stays
 flat on both.
+
+A local worker takes about a second to start (a fresh interpreter importing the stages). Until
+the workers are ready the calling process runs tasks itself, so that second is spent working:
+a task gives the same result in any process (``tests/test_batch.py`` compares the executors).
 """
 
 from __future__ import annotations
 
 import os
+import threading
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from multiprocessing import get_context
@@ -22,6 +27,11 @@ __all__ = ["DaskExecutor", "ProcessExecutor", "SerialExecutor", "make_executor"]
 
 def _indexed(fn: Callable[..., Any], index: int, *args: Any) -> tuple[int, Any]:
     return index, fn(*args)
+
+
+def _started() -> int:
+    """A worker's first task: it returns once the worker has started."""
+    return os.getpid()
 
 
 class SerialExecutor:
@@ -49,28 +59,68 @@ class ProcessExecutor:
         # Set before the fork server starts, so every worker inherits it.
         for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
             os.environ.setdefault(var, "1")
-        self._pool = ProcessPoolExecutor(max_workers=self.workers,
-                                         mp_context=get_context("forkserver"))
+        context = get_context("forkserver")
+        # imports done once in the fork server, not once per worker (no effect if it runs)
+        context.set_forkserver_preload(["pipeline.batch.worker_init"])
+        self._pool = ProcessPoolExecutor(max_workers=self.workers, mp_context=context)
+        # The workers start now, from a thread: launching the first one waits for the fork
+        # server's imports, and until the workers are ready their tasks run here instead.
+        self._starting: list[Future] = []
+        self._launch_error: BaseException | None = None
+        self._launcher = threading.Thread(target=self._launch, name="isogap-workers",
+                                          daemon=True)
+        self._launcher.start()
+
+    def _launch(self) -> None:
+        try:
+            for _ in range(self.workers):
+                self._starting.append(self._pool.submit(_started))
+        except BaseException as exc:  # raised in the calling thread by _ready
+            self._launch_error = exc
+
+    def _ready(self) -> int:
+        """Workers that have started (a failed start is raised here, not hidden)."""
+        if self._launcher.is_alive():
+            return 0
+        if self._launch_error is not None:
+            raise self._launch_error
+        for fut in [f for f in self._starting if f.done()]:
+            fut.result()
+            self._starting.remove(fut)
+        return self.workers - len(self._starting)
 
     def map_unordered(self, fn: Callable[..., Any], jobs: Iterable[tuple]) -> Iterator[Any]:
-        # keep at most 2 tasks per worker in flight: results stream, memory stays flat
+        # keep at most 2 tasks per ready worker in flight: results stream, memory stays flat
         jobs = iter(enumerate(jobs))
         pending: set[Future] = set()
-        limit = 2 * self.workers
+        exhausted = False
         while True:
-            while len(pending) < limit:
+            ready = self._ready()
+            while not exhausted and len(pending) < 2 * ready:
                 try:
                     i, args = next(jobs)
                 except StopIteration:
+                    exhausted = True
                     break
                 pending.add(self._pool.submit(_indexed, fn, i, *args))
-            if not pending:
+            if ready < self.workers and not exhausted:  # workers still starting: help out
+                try:
+                    i, args = next(jobs)
+                except StopIteration:
+                    exhausted = True
+                else:
+                    yield _indexed(fn, i, *args)
+                done = {f for f in pending if f.done()}
+            elif not pending:
                 return
-            done, pending = wait(pending, return_when=FIRST_COMPLETED)
+            else:
+                done, pending = wait(pending, return_when=FIRST_COMPLETED)
+            pending -= done
             for fut in done:
                 yield fut.result()
 
     def close(self) -> None:
+        self._launcher.join()
         self._pool.shutdown(cancel_futures=True)
 
 
