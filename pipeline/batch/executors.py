@@ -5,9 +5,10 @@ most two tasks in flight per worker; Dask gets all tasks at once (its scheduler 
 and each result is released as soon as it has been taken, so results stream and memory stays
 flat on both.
 
-A local worker takes about a second to start (a fresh interpreter importing the stages). Until
-the workers are ready the calling process runs tasks itself, so that second is spent working:
-a task gives the same result in any process (``tests/test_batch.py`` compares the executors).
+Local workers are forked from a fork server that has imported the stages once
+(:mod:`pipeline.batch.worker_init`), not once per worker. Until they are ready (about a second
+after the first executor of a process is made) the calling process runs tasks itself: a task
+gives the same result in any process (``tests/test_batch.py`` compares the executors).
 """
 
 from __future__ import annotations
