@@ -21,6 +21,12 @@ _HIGH_PASS_BAND = (0.35, 0.65)
 _PEAK_MARGIN_BINS = 2
 
 
+#: Above this fraction of rows with gap pixels, a gap-filling step transforms the whole frame
+#: (measured at 512²: a whole-frame step costs 1.9 ms, a gathered one 1.2 ms with 10 % of the
+#: rows, 1.8 ms with 60 %, 2.0 ms with 80 %; a frame's current map with gaps in 511 rows 3.0 ms).
+_WHOLE_FRAME_ROWS = 0.7
+
+
 def _fill_invalid(values: np.ndarray, ok: np.ndarray) -> np.ndarray:
     """Copy of ``values`` with the pixels outside ``ok`` linearly interpolated in raster order."""
     out = np.array(values, dtype=np.float64)
@@ -128,12 +134,15 @@ class _GapFill:
     the rows holding gap pixels change between steps, and only those rows of ``G² x`` are
     needed, so the row transforms of the other rows are kept from the first step and only the
     gap rows are transformed again (identical numbers: each row is transformed on its own).
+    When more than :data:`_WHOLE_FRAME_ROWS` of the rows hold gaps, whole-frame transforms into
+    fixed buffers are cheaper than gathering and scattering those rows (and give the same
+    numbers, the unchanged rows' transforms being recomputed exactly).
     """
 
     def __init__(self, x: np.ndarray, gap: np.ndarray, fft: _FFT2) -> None:
         self.x, self.fft = x, fft
         self.rows = np.flatnonzero(gap.any(axis=1))
-        self.all_rows = self.rows.size == x.shape[0]
+        self.all_rows = self.rows.size > _WHOLE_FRAME_ROWS * x.shape[0]
         if self.all_rows:  # plain whole-frame transforms into fixed buffers
             self.flat_gap = np.flatnonzero(gap)
             self.corr = np.empty_like(x)

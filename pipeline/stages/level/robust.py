@@ -178,7 +178,10 @@ def _fit(phi: np.ndarray, z: np.ndarray, labels: np.ndarray | None = None, n_lab
         if counts.size == t and bool((counts > 0).all()):
             key = labels.astype(np.int16) if t < 2**15 else labels
             order = np.argsort(key, kind="stable")
-            phi, z, lab = phi[:, order], z[order], labels[order]
+            # (a column gather comes out in Fortran order: made C-contiguous again, so that
+            # every per-pixel product below runs along memory)
+            phi = np.ascontiguousarray(phi[:, order])
+            z, lab = z[order], labels[order]
             starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
 
     def label_sums(a: np.ndarray) -> np.ndarray:
