@@ -55,7 +55,7 @@ def test_buffered_fft_equals_scipy_fft() -> None:
                                atol=1e-13)
 
 
-@pytest.mark.parametrize("rows", ["few", "all"])
+@pytest.mark.parametrize("rows", ["few", "most", "all"])
 def test_gap_fill_steps_equal_plain_landweber(rows: str) -> None:
     rng = np.random.default_rng(15)
     ny, nx = 40, 36
@@ -63,8 +63,9 @@ def test_gap_fill_steps_equal_plain_landweber(rows: str) -> None:
     gap = np.zeros((ny, nx), bool)
     if rows == "few":
         gap[[3, 17, 18], 5:9] = True
-    else:
-        gap[np.arange(ny), rng.integers(0, nx, size=ny)] = True
+    else:  # "most": 36 of 40 rows, the whole-frame path with some rows free of gaps
+        with_gaps = np.arange(ny) if rows == "all" else np.arange(4, ny)
+        gap[with_gaps, rng.integers(0, nx, size=with_gaps.size)] = True
     g2 = rng.random((ny, nx // 2 + 1))
     ref = x.copy()
     for _ in range(4):  # x[gap] -= (G² x)[gap], G² applied with scipy.fft (the reference)
@@ -77,6 +78,29 @@ def test_gap_fill_steps_equal_plain_landweber(rows: str) -> None:
         fill.step(spec, spec * g2)
     np.testing.assert_allclose(got, ref, rtol=0, atol=1e-12)
     np.testing.assert_allclose(spec, sfft.rfft2(got), rtol=0, atol=1e-11)
+
+
+def test_gap_fill_whole_frame_and_gathered_rows_agree_exactly(monkeypatch) -> None:
+    # the choice between the two paths is a matter of speed only: the same bits either way
+    rng = np.random.default_rng(18)
+    ny, nx = 40, 36
+    x = rng.normal(size=(ny, nx))
+    gap = np.zeros((ny, nx), bool)
+    gap[np.arange(0, ny, 2), rng.integers(0, nx, size=ny // 2)] = True
+    g2 = rng.random((ny, nx // 2 + 1))
+    results = []
+    for threshold in (0.0, 1.0):  # every gap pattern whole-frame / always gathered
+        monkeypatch.setattr(Sp, "_WHOLE_FRAME_ROWS", threshold)
+        got = x.copy()
+        fft = Sp._FFT2((ny, nx))
+        fill = Sp._GapFill(got, gap, fft)
+        assert fill.whole_frame == (threshold == 0.0)
+        spec = fft.forward(got)
+        for _ in range(3):
+            fill.step(spec, spec * g2)
+        results.append((got, spec))
+    np.testing.assert_array_equal(results[0][0], results[1][0])
+    np.testing.assert_array_equal(results[0][1], results[1][1])
 
 
 def test_take_columns_equals_fancy_indexing() -> None:

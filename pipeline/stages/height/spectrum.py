@@ -142,8 +142,8 @@ class _GapFill:
     def __init__(self, x: np.ndarray, gap: np.ndarray, fft: _FFT2) -> None:
         self.x, self.fft = x, fft
         self.rows = np.flatnonzero(gap.any(axis=1))
-        self.all_rows = self.rows.size > _WHOLE_FRAME_ROWS * x.shape[0]
-        if self.all_rows:  # plain whole-frame transforms into fixed buffers
+        self.whole_frame = self.rows.size > _WHOLE_FRAME_ROWS * x.shape[0]
+        if self.whole_frame:  # plain whole-frame transforms into fixed buffers
             self.flat_gap = np.flatnonzero(gap)
             self.corr = np.empty_like(x)
         else:
@@ -155,7 +155,7 @@ class _GapFill:
         new ``x``. ``filtered`` is overwritten."""
         x, rows, nx = self.x, self.rows, self.fft.nx
         cols = np.fft.ifft(filtered, axis=0, out=filtered)
-        if self.all_rows:
+        if self.whole_frame:
             corr = np.fft.irfft(cols, n=nx, axis=1, out=self.corr)
             flat = x.reshape(-1)
             flat[self.flat_gap] -= corr.reshape(-1)[self.flat_gap]
